@@ -1,0 +1,357 @@
+"""Dependence analysis and legality with isl; the only module that imports islpy.
+
+Memory-based dependences (flow, anti, output) between statement instances are
+computed from iteration domains, access relations and the original 2d+1
+schedule.  A transformation is legal when its schedule keeps every dependence:
+``V = D ∩ (θ(x) ⪰ θ(y))`` must be empty for all parameter values.  Everything
+returned is plain data (ints, strings, dataclasses).
+"""
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+
+import islpy as isl
+
+from .model import Affine, Loop, Nest, Obligation, ScheduleDim, Statement
+
+_ctx = isl.DEFAULT_CONTEXT
+
+
+@dataclass(frozen=True)
+class Dependence:
+    kind: str  # "flow", "anti", "output"
+    array: str  # C name
+    source: str  # statement names
+    sink: str
+    distance: tuple[int, ...] | None  # over the perfect loops, when uniform (in the loops' own direction)
+    direction: tuple[str, ...]  # "<", "=", ">", "<=", ">=", "*" per perfect loop
+
+
+@dataclass(frozen=True)
+class Instance:
+    statement: str
+    line: int
+    values: tuple[tuple[str, int], ...]
+
+    def render(self) -> str:
+        return f"{self.statement}(" + ", ".join(f"{k}={v}" for k, v in self.values) + ")"
+
+
+@dataclass(frozen=True)
+class Witness:
+    kind: str
+    source: Instance  # runs first in the original order
+    sink: Instance
+    element: str
+    source_writes: bool
+    sink_writes: bool
+    params: tuple[tuple[str, int], ...]
+
+
+@dataclass(frozen=True)
+class Legality:
+    legal: bool
+    witness: Witness | None = None
+
+
+def _isl_name(sym: str) -> str:
+    if sym.startswith("$"):
+        return "_q" + sym[1:]
+    return "_" + sym
+
+
+def _from_isl(name: str) -> str:
+    if name.startswith("_q") and name[2:].isdigit():
+        return "$" + name[2:]
+    return name[1:] if name.startswith("_") else name
+
+
+def _tuple_name(key: str) -> str:
+    return "A_" + re.sub(r"[^A-Za-z0-9_]", "_", key)
+
+
+class NestAnalysis:
+    """isl view of one nest: domains, accesses, original schedule, dependences."""
+
+    def __init__(self, nest: Nest, assumptions: tuple[str, ...] = ()) -> None:
+        self.nest = nest
+        self.loops: dict[str, Loop] = {lp.iterator: lp for lp in nest.perfect + nest.inner}
+        self.params = [_isl_name(p.name) for p in nest.params]
+        self.param_text = {_isl_name(p.name): p.text for p in nest.params}
+        ctx_parts = [c for c in nest.context]
+        for p in nest.params:
+            if p.ctype.is_unsigned:
+                ctx_parts.append(f"{p.name} >= 0")
+        ctx_parts += list(assumptions)
+        self.context = self._set("{ : " + " and ".join(self._rename(c) for c in ctx_parts) + " }") if ctx_parts \
+            else self._set("{ : }")
+        self.tail_len = max((len(s.tail) for s in nest.statements), default=0)
+        self.domains = {s.name: self._domain(s) for s in nest.statements}
+        self.stmts = {s.name: s for s in nest.statements}
+        self.original = self._schedule(None)
+        self._deps: list[tuple[str, str, isl.UnionMap]] | None = None
+
+    # -- construction helpers
+    def _prefix(self) -> str:
+        return "[" + ", ".join(self.params) + "] -> "
+
+    def _set(self, body: str) -> isl.Set:
+        return isl.Set(self._prefix() + body, context=_ctx)
+
+    def _rename(self, text: str) -> str:
+        names = {p.name for p in self.nest.params} | set(self.loops)
+        ctx_names = set(re.findall(r"[A-Za-z_]\w*", " ".join(self.nest.context)))
+
+        def sub(m: re.Match) -> str:
+            w = m.group(0)
+            if w in ("and", "or", "not", "exists", "floor", "min", "max", "mod"):
+                return w
+            if w in names or w in ctx_names:
+                return _isl_name(w)
+            return w
+
+        text = text.replace("$", "_q")
+        text = text.replace("&&", " and ").replace("||", " or ").replace("==", "=")
+        return re.sub(r"(?<![_\w])[A-Za-z]\w*", sub, text)
+
+    def _r(self, a: Affine) -> str:
+        return a.render(_isl_name)
+
+    def loop_constraints(self, lp: Loop) -> str:
+        x = _isl_name(lp.iterator)
+        lo, lim = self._r(lp.start.value), self._r(lp.limit.value)
+        parts = [f"{lo} <= {x}" if lp.direction > 0 else f"{x} <= {lo}", f"{x} {lp.op} {lim}"]
+        if lp.ctype.is_unsigned:
+            parts.append(f"{x} >= 0")
+        if lp.step > 1:
+            sign = "+" if lp.direction > 0 else "-"
+            parts.append(f"exists (e_{x} : {x} = {lo} {sign} {lp.step}e_{x})")
+        return " and ".join(parts)
+
+    def chain_set(self, name: str, iterators: tuple[str, ...]) -> isl.Set:
+        dims = ", ".join(_isl_name(i) for i in iterators)
+        cons = " and ".join(self.loop_constraints(self.loops[i]) for i in iterators) or "true"
+        return self._set(f"{{ {name}[{dims}] : {cons} }}").intersect_params(self.context)
+
+    def _domain(self, s: Statement) -> isl.Set:
+        return self.chain_set(s.name, s.loops)
+
+    def _sched_dims(self, s: Statement, dims: list[ScheduleDim] | None) -> list[str]:
+        out = []
+        if dims is None:
+            dims = [ScheduleDim(lp.iterator) for lp in self.nest.perfect]
+        for d in dims:
+            lp = self.loops[d.iterator]
+            x = _isl_name(d.iterator)
+            if d.block is None:
+                out.append(x if lp.direction > 0 else f"-{x}")
+            else:
+                o = self._r(d.origin) if d.origin is not None else self._r(lp.start.value)
+                diff = f"({x} - ({o}))" if lp.direction > 0 else f"(({o}) - {x})"
+                out.append(f"floor({diff}/{d.block})")
+        for t in s.tail:
+            if isinstance(t, int):
+                out.append(str(t))
+            else:
+                out.append(_isl_name(t) if self.loops[t].direction > 0 else f"-{_isl_name(t)}")
+        out += ["0"] * (self.tail_len - len(s.tail))
+        return out
+
+    def _schedule(self, dims: list[ScheduleDim] | None) -> isl.UnionMap:
+        um = None
+        for s in self.nest.statements:
+            vars_ = ", ".join(_isl_name(i) for i in s.loops)
+            m = isl.Map(self._prefix() + f"{{ {s.name}[{vars_}] -> [{', '.join(self._sched_dims(s, dims))}] }}",
+                        context=_ctx).intersect_domain(self.domains[s.name])
+            um = isl.UnionMap.from_map(m) if um is None else um.union(isl.UnionMap.from_map(m))
+        return um if um is not None else isl.UnionMap("{ }", context=_ctx)
+
+    def _access(self, s: Statement, write: bool, array: str) -> isl.UnionMap | None:
+        um = None
+        vars_ = ", ".join(_isl_name(i) for i in s.loops)
+        for a in s.accesses:
+            if a.write != write or a.array != array:
+                continue
+            subs = ", ".join(self._r(x) for x in a.subscripts)
+            m = isl.Map(self._prefix() + f"{{ {s.name}[{vars_}] -> {_tuple_name(a.array)}[{subs}] }}",
+                        context=_ctx).intersect_domain(self.domains[s.name])
+            um = isl.UnionMap.from_map(m) if um is None else um.union(isl.UnionMap.from_map(m))
+        return um
+
+    def _union(self, write: bool, array: str) -> isl.UnionMap | None:
+        out = None
+        for s in self.nest.statements:
+            m = self._access(s, write, array)
+            if m is not None:
+                out = m if out is None else out.union(m)
+        return out
+
+    # -- dependences
+    def dependence_relations(self) -> list[tuple[str, str, isl.UnionMap]]:
+        """(kind, array key, relation source -> sink) for every array with a write."""
+        if self._deps is not None:
+            return self._deps
+        before = self.original.lex_lt_union_map(self.original)
+        out = []
+        for arr in self.nest.arrays:
+            w = self._union(True, arr.key)
+            if w is None:
+                continue
+            r = self._union(False, arr.key)
+            pairs = [("output", w, w)]
+            if r is not None:
+                pairs += [("flow", w, r), ("anti", r, w)]
+            for kind, a, b in pairs:
+                d = a.apply_range(b.reverse()).intersect(before)
+                if not d.is_empty():
+                    out.append((kind, arr.key, d))
+        self._deps = out
+        return out
+
+    def dependences(self) -> list[Dependence]:
+        out = []
+        for kind, key, rel in self.dependence_relations():
+            for m in _maps(rel):
+                src, dst = m.get_tuple_name(isl.dim_type.in_), m.get_tuple_name(isl.dim_type.out)
+                dist, dirs = self._distance(m)
+                out.append(Dependence(kind, self.nest.array(key).name, src, dst, dist, dirs))
+        return out
+
+    def _distance(self, m: isl.Map) -> tuple[tuple[int, ...] | None, tuple[str, ...]]:
+        delta = self._perfect_deltas(m)
+        d = len(self.nest.perfect)
+        dirs = tuple(self._dir_only(delta, k) for k in range(d))
+        dist: list[int] = []
+        for k, lp in enumerate(self.nest.perfect):
+            vmin, vmax = delta.dim_min(k), delta.dim_max(k)
+            if not (_is_const(vmin) and _is_const(vmax) and _pw_const(vmin) == _pw_const(vmax)):
+                return None, dirs
+            dist.append(lp.direction * _pw_const(vmin))
+        return tuple(dist), dirs
+
+    def _perfect_deltas(self, m: isl.Map) -> isl.Set:
+        d = len(self.nest.perfect)
+        n_in, n_out = m.dim(isl.dim_type.in_), m.dim(isl.dim_type.out)
+        p = m.project_out(isl.dim_type.in_, d, n_in - d).project_out(isl.dim_type.out, d, n_out - d)
+        p = p.set_tuple_name(isl.dim_type.in_, "P").set_tuple_name(isl.dim_type.out, "P")
+        return p.deltas()
+
+    def _dir_only(self, delta: isl.Set, k: int) -> str:
+        d = len(self.nest.perfect)
+        sign = self.nest.perfect[k].direction
+        names = ", ".join(f"d{j}" for j in range(d))
+        has = []
+        for cond in (">", "=", "<"):
+            probe = isl.Set(self._prefix() + f"{{ P[{names}] : {sign}*d{k} {cond} 0 }}", context=_ctx)
+            has.append(not delta.intersect(probe).is_empty())
+        return {(True, False, False): "<", (False, True, False): "=", (False, False, True): ">",
+                (True, True, False): "<=", (False, True, True): ">="}.get(tuple(has), "*")
+
+    # -- legality
+    def check(self, dims: list[ScheduleDim]) -> Legality:
+        """Is the schedule ``dims`` (then each statement's tail) legal? With a witness if not."""
+        theta = self._schedule(dims)
+        ge = theta.lex_ge_union_map(theta)
+        for kind, key, rel in self.dependence_relations():
+            v = rel.intersect(ge)
+            if not v.is_empty():
+                return Legality(False, self._witness(kind, key, v))
+        return Legality(True)
+
+    def _witness(self, kind: str, key: str, v: isl.UnionMap) -> Witness:
+        m = _maps(v)[0]
+        src, dst = m.get_tuple_name(isl.dim_type.in_), m.get_tuple_name(isl.dim_type.out)
+        s = m.wrap()
+        npar = s.dim(isl.dim_type.param)
+        names = [s.get_dim_name(isl.dim_type.param, k) for k in range(npar)]
+        flat = s.move_dims(isl.dim_type.set, 0, isl.dim_type.param, 0, npar)
+        point = None
+        for lo in (0, -64):
+            box = flat
+            for k in range(npar):
+                box = box.lower_bound_val(isl.dim_type.set, k, isl.Val(lo)) \
+                    .upper_bound_val(isl.dim_type.set, k, isl.Val(64))
+            if not box.is_empty():
+                try:
+                    point = box.lexmin().sample_point()
+                except isl.Error:
+                    point = box.sample_point()
+                break
+        if point is None:
+            point = flat.sample_point()
+        vals = [point.get_coordinate_val(isl.dim_type.set, k).to_python() for k in range(flat.dim(isl.dim_type.set))]
+        params = tuple(zip(names, vals[:npar]))
+        rest = vals[npar:]
+        s_src, s_dst = self.stmts[src], self.stmts[dst]
+        a = rest[: len(s_src.loops)]
+        b = rest[len(s_src.loops):]
+        inst_a = Instance(src, s_src.line, tuple(zip(s_src.loops, a)))
+        inst_b = Instance(dst, s_dst.line, tuple(zip(s_dst.loops, b)))
+        env = dict(zip(s_src.loops, a)) | {_from_isl(n): v for n, v in params}
+        elem = self._element(s_src, key, env, kind)
+        used = {n for n, _ in params if self._param_matters(n, m)}
+        shown = tuple((self.param_text.get(n, _from_isl(n)), v) for n, v in params if n in used)
+        return Witness(kind, inst_a, inst_b, elem, kind != "anti", kind != "flow", shown)
+
+    def _param_matters(self, name: str, m: isl.Map) -> bool:
+        return True
+
+    def _element(self, s: Statement, key: str, env: dict[str, int], kind: str) -> str:
+        want_write = kind != "anti"
+        arr = self.nest.array(key)
+        for a in s.accesses:
+            if a.array == key and a.write == want_write:
+                idx = [_eval(x, env) for x in a.subscripts]
+                if arr.local:
+                    return arr.name
+                return arr.name + "".join(f"[{i}]" for i in idx)
+        return arr.name
+
+    # -- other questions
+    def always_nonnegative(self, expr: Affine, loops: tuple[str, ...]) -> bool:
+        dom = self.chain_set("X", loops)
+        neg = dom.intersect(isl.Set(self._prefix() + f"{{ X[{', '.join(_isl_name(i) for i in loops)}] : "
+                                     f"{self._r(expr)} < 0 }}", context=_ctx))
+        return neg.is_empty()
+
+    def failing_obligations(self) -> list[Obligation]:
+        return [o for o in self.nest.obligations if not self.always_nonnegative(o.expr, o.loops)]
+
+    def permutable(self, lo: int, hi: int) -> bool:
+        """Are perfect loops lo..hi (inclusive) fully permutable (all distances >= 0 there)?"""
+        d = len(self.nest.perfect)
+        names = ", ".join(f"d{j}" for j in range(d))
+        for _, _, rel in self.dependence_relations():
+            for m in _maps(rel):
+                delta = self._perfect_deltas(m)
+                outer_eq = " and ".join(f"d{j} = 0" for j in range(lo)) or "true"
+                for k in range(lo, hi + 1):
+                    sign = self.nest.perfect[k].direction
+                    probe = isl.Set(self._prefix() + f"{{ P[{names}] : {outer_eq} and {sign}*d{k} < 0 }}",
+                                    context=_ctx)
+                    if not delta.intersect(probe).is_empty():
+                        return False
+        return True
+
+
+def _maps(um: isl.UnionMap) -> list[isl.Map]:
+    out: list[isl.Map] = []
+    um.foreach_map(out.append)
+    return out
+
+
+def _is_const(pa: isl.PwAff) -> bool:
+    pieces: list[bool] = []
+    pa.foreach_piece(lambda _s, aff: pieces.append(aff.is_cst()))
+    return len(pieces) == 1 and pieces[0]
+
+
+def _pw_const(pa: isl.PwAff) -> int:
+    out = []
+    pa.foreach_piece(lambda _s, aff: out.append(aff.get_constant_val().to_python()))
+    return out[0]
+
+
+def _eval(a: Affine, env: dict[str, int]) -> int:
+    return a.const + sum(c * env.get(n, 0) for n, c in a.terms)

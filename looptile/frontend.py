@@ -1,0 +1,172 @@
+"""The analysis view of a file: the preprocessed translation unit parsed by pycparser.
+
+Lines map back to the original file through the preprocessor's line markers;
+each ``for`` statement of the AST is paired with its ``for`` keyword in the
+original text (same line, same order), which gives exact byte positions.
+"""
+from __future__ import annotations
+
+import os
+import re
+from dataclasses import dataclass, field
+
+from pycparser import c_ast, c_parser
+
+from .errors import InputError, Refusal
+from .flags import CompileFlags
+from .source import SourceFile, Token, code_tokens, tokenize
+from . import toolchain
+
+_MARKER = re.compile(r'^#\s*(?:line\s+)?(\d+)\s+"((?:[^"\\]|\\.)*)"')
+
+
+@dataclass
+class LoopSite:
+    """One ``for`` statement of the file: AST node plus its place in the original text."""
+
+    node: c_ast.For
+    function: str
+    line: int
+    token_index: int | None  # index of the 'for' keyword in TranslationUnit.tokens; None if unpaired
+    parent: LoopSite | None = None
+    top_index: int | None = None  # K of FUNC:K for a top-level nest of its function
+    children: list[LoopSite] = field(default_factory=list)
+
+
+@dataclass
+class FunctionInfo:
+    name: str
+    node: c_ast.FuncDef
+    loops: list[LoopSite]  # every for statement, in source order
+
+
+@dataclass
+class TranslationUnit:
+    source: SourceFile
+    flags: CompileFlags
+    ast: c_ast.FileAST
+    macros: dict[str, str]
+    tokens: list[Token]  # code tokens of the original file
+    all_tokens: list[Token]  # with comments and preprocessor lines
+    functions: list[FunctionInfo]
+    identifiers: set[str]
+
+    def loops(self) -> list[LoopSite]:
+        return [s for f in self.functions for s in f.loops]
+
+
+def main_file_lines(pre: str, main: str) -> list[tuple[int, str]]:
+    """(original line, text) of the preprocessed lines that come from the main file."""
+    out: list[tuple[int, str]] = []
+    current, line = None, 0
+    for text in pre.splitlines():
+        m = _MARKER.match(text)
+        if m:
+            line, current = int(m.group(1)), m.group(2)
+            continue
+        if current == main:
+            if text.strip():
+                out.append((line, text))
+            line += 1
+        else:
+            line += 1
+    return out
+
+
+def _normalise(text: str) -> str:
+    text = re.sub(r"\b__restrict\b", "restrict", text)
+    text = re.sub(r"\b__inline\b", "inline", text)
+    return " ".join(t.text for t in tokenize(text))
+
+
+def check_header_flags_harmless(src: SourceFile, flags: CompileFlags, parsed_text: str) -> None:
+    """Refuse when the header flags change the user's own code (e.g. its #ifdef __GNUC__)."""
+    plain = toolchain.preprocess(src.path, flags, parseable=False).text
+    main = os.path.abspath(src.path)
+    a = [(ln, _normalise(t)) for ln, t in main_file_lines(plain, main)]
+    b = [(ln, _normalise(t)) for ln, t in main_file_lines(parsed_text, main)]
+    a = [x for x in a if x[1]]
+    b = [x for x in b if x[1]]
+    for (la, ta), (lb, tb) in zip(a, b):
+        if (la, ta) != (lb, tb):
+            line = min(la, lb)
+            raise Refusal(
+                "cannot analyse this file faithfully; the flags that make the system headers "
+                "parseable (for example -U__GNUC__) change this file's own code here "
+                "(a __GNUC__ branch, an attribute or an asm statement)",
+                path=src.path, line=line, column=1, source_line=src.line_text(line),
+            )
+    if len(a) != len(b):
+        line = (a[len(b)][0] if len(a) > len(b) else b[len(a)][0])
+        raise Refusal(
+            "cannot analyse this file faithfully; the flags that make the system headers "
+            "parseable change this file's own code from here on",
+            path=src.path, line=line, column=1,
+        )
+
+
+def load(src: SourceFile, flags: CompileFlags) -> TranslationUnit:
+    pre = toolchain.preprocess(src.path, flags)
+    check_header_flags_harmless(src, flags, pre.text)
+    main = os.path.abspath(src.path)
+    try:
+        ast = c_parser.CParser().parse(pre.text, main)
+    except Exception as exc:  # pycparser raises ParseError with "file:line:col: msg"
+        msg = str(exc)
+        m = re.match(r"(.*?):(\d+):(\d+): (.*)", msg)
+        if m and m.group(1) == main:
+            line = int(m.group(2))
+            raise InputError(
+                f"cannot parse the preprocessed file; {m.group(4)} (looptile reads standard C99/C11)",
+                path=src.path, line=line, column=int(m.group(3)), source_line=src.line_text(line),
+            ) from exc
+        raise InputError(f"cannot parse the preprocessed file; {msg}", path=src.path) from exc
+    all_tokens = tokenize(src.text)
+    tokens = code_tokens(all_tokens)
+    macros = toolchain.macro_definitions(src.path, flags)
+    functions = _functions(ast, main, tokens, src)
+    idents = {t.text for t in all_tokens if t.kind == "id"}
+    idents |= set(re.findall(r"[A-Za-z_]\w*", pre.text))
+    return TranslationUnit(src, flags, ast, macros, tokens, all_tokens, functions, idents)
+
+
+class _ForCollector(c_ast.NodeVisitor):
+    def __init__(self, function: str) -> None:
+        self.function = function
+        self.sites: list[LoopSite] = []
+        self.stack: list[LoopSite] = []
+
+    def visit_For(self, node: c_ast.For) -> None:
+        site = LoopSite(node, self.function, node.coord.line, None, self.stack[-1] if self.stack else None)
+        if site.parent:
+            site.parent.children.append(site)
+        self.sites.append(site)
+        self.stack.append(site)
+        self.generic_visit(node)
+        self.stack.pop()
+
+
+def _functions(ast: c_ast.FileAST, main: str, tokens: list[Token], src: SourceFile) -> list[FunctionInfo]:
+    funcs: list[FunctionInfo] = []
+    for ext in ast.ext:
+        if isinstance(ext, c_ast.FuncDef) and ext.coord and ext.coord.file == main:
+            col = _ForCollector(ext.decl.name)
+            col.visit(ext.body)
+            top = [s for s in col.sites if s.parent is None]
+            for k, s in enumerate(top, 1):
+                s.top_index = k
+            funcs.append(FunctionInfo(ext.decl.name, ext, col.sites))
+    by_line: dict[int, list[int]] = {}
+    for idx, t in enumerate(tokens):
+        if t.kind == "id" and t.text == "for":
+            by_line.setdefault(src.line_col(t.start)[0], []).append(idx)
+    sites_by_line: dict[int, list[LoopSite]] = {}
+    for f in funcs:
+        for s in f.loops:
+            sites_by_line.setdefault(s.line, []).append(s)
+    for line, sites in sites_by_line.items():
+        toks = by_line.get(line, [])
+        if len(toks) == len(sites):
+            for s, ti in zip(sites, toks):
+                s.token_index = ti
+    return funcs

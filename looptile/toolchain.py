@@ -1,0 +1,77 @@
+"""The one place that runs the system C compiler (``CC``, default ``cc``)."""
+from __future__ import annotations
+
+import os
+import shlex
+import subprocess
+from dataclasses import dataclass
+
+from .errors import InputError
+from .flags import CompileFlags
+
+# Flags that make glibc and gcc system headers parseable by pycparser (measured with
+# gcc 12 / glibc 2.36 on stdio, stdlib, string, math, stdint, stddef, time, stdbool,
+# float, limits, assert, inttypes and complex; see tests/test_frontend.py).  They can
+# change the user's own code too, which frontend.py detects and refuses.
+PARSEABLE_HEADER_FLAGS: tuple[str, ...] = (
+    "-U__GNUC__",
+    "-D__attribute__(x)=",
+    "-D__extension__=",
+    "-D__asm__(x)=",
+    "-D__asm(x)=",
+    "-D__restrict=restrict",
+    "-D__inline=inline",
+    "-D__builtin_va_list=int",
+)
+
+
+def compiler() -> list[str]:
+    return shlex.split(os.environ.get("CC", "cc")) or ["cc"]
+
+
+@dataclass(frozen=True)
+class Preprocessed:
+    text: str  # latin-1 text of the translation unit, line markers kept
+    command: tuple[str, ...]
+
+
+def _run(argv: list[str], cwd: str | None, path: str, what: str) -> str:
+    try:
+        proc = subprocess.run(argv, cwd=cwd, capture_output=True, timeout=120)
+    except FileNotFoundError as exc:
+        raise InputError(f"cannot run the C compiler '{argv[0]}'; set CC to a C compiler", path=path) from exc
+    except subprocess.TimeoutExpired as exc:
+        raise InputError(f"{what} timed out after 120 s", path=path) from exc
+    if proc.returncode != 0:
+        err = proc.stderr.decode("latin-1").strip().splitlines()
+        raise InputError(
+            f"{what} failed; fix the error below or pass the flags the file needs (-I, -D, --compile-db)",
+            path=path,
+            details=err[:20],
+        )
+    return proc.stdout.decode("latin-1")
+
+
+def preprocess(path: str, flags: CompileFlags, parseable: bool = True) -> Preprocessed:
+    """``cc -E`` of the file with the user's flags (and the header flags when ``parseable``)."""
+    argv = compiler() + ["-E"] + list(flags.args)
+    if parseable:
+        argv += list(PARSEABLE_HEADER_FLAGS)
+    argv.append(os.path.abspath(path))
+    return Preprocessed(_run(argv, flags.directory, path, "preprocessing"), tuple(argv))
+
+
+def macro_definitions(path: str, flags: CompileFlags) -> dict[str, str]:
+    """Object-like macros defined at the end of the file (``cc -E -dM``), name -> body."""
+    argv = compiler() + ["-E", "-dM"] + list(flags.args) + [os.path.abspath(path)]
+    out: dict[str, str] = {}
+    for line in _run(argv, flags.directory, path, "preprocessing").splitlines():
+        if not line.startswith("#define "):
+            continue
+        rest = line[len("#define "):]
+        name, _, body = rest.partition(" ")
+        if "(" in name:
+            out[name.split("(", 1)[0]] = "\0function-like"
+            continue
+        out[name] = body.strip()
+    return out
