@@ -805,12 +805,7 @@ def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] 
     if pps:
         raise ctx.refuse("a preprocessor line between the loop headers would be detached by the rewrite",
                          offset=pps[0].start)
-    macros = []
-    for t in tu.tokens:
-        if innermost.body_start <= t.start < innermost.body_end and t.kind == "id" and t.text in tu.macros:
-            body_text = tu.macros[t.text].strip("() ")
-            if body_text.lstrip("-").isdigit() and (t.text, body_text) not in macros:
-                macros.append((t.text, body_text))
+    macros = _subscript_macros(tu, innermost)
     return Nest(
         path=tu.source.path, function=site.function, line=outer.line, col=outer.col,
         start=outer.for_offset, end=outer.body_end, perfect=tuple(perfect), inner=tuple(ctx.inner),
@@ -818,6 +813,24 @@ def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] 
         context=tuple(_enclosing_context(tu, site, assume_pure)), obligations=tuple(ctx.obligations),
         header_comments=tuple(comments), outer_declared=tuple(ctx.outer_declared), macros_used=tuple(macros),
     )
+
+
+def _subscript_macros(tu: TranslationUnit, innermost: Loop) -> list[tuple[str, str]]:
+    """Integer macros spelled inside subscripts of the body: the proof used their values."""
+    out: list[tuple[str, str]] = []
+    depth = 0
+    for t in tu.tokens:
+        if not innermost.body_start <= t.start < innermost.body_end:
+            continue
+        if t.text == "[":
+            depth += 1
+        elif t.text == "]":
+            depth -= 1
+        elif depth > 0 and t.kind == "id" and t.text in tu.macros:
+            body_text = tu.macros[t.text].strip("() ")
+            if body_text.lstrip("-").isdigit() and (t.text, body_text) not in out:
+                out.append((t.text, body_text))
+    return out
 
 
 def _check_writes(ctx: _Ctx) -> None:

@@ -1,0 +1,185 @@
+"""Command line: the one place where errors become messages and exit codes.
+
+Exit status, the same for every command: 0 done; 1 refused (illegal or
+unsupported) or a mismatch found; 2 usage, read, parse or write error;
+3 internal error.
+"""
+from __future__ import annotations
+
+import functools
+import json
+import os
+import shlex
+import sys
+import traceback
+
+import click
+
+from . import analyze as analyze_mod
+from . import pipeline
+from .errors import EXIT_INTERNAL, LooptileError, UsageError
+from .flags import CompileFlags, from_compile_db, from_options
+from .splice import unified_diff, write_atomic
+from .transform.tile import TileRequest
+
+
+def frontend_options(f):
+    """The preprocessor flags, as a compiler takes them."""
+    opts = [
+        click.option("-I", "includes", multiple=True, metavar="DIR", help="Add DIR to the include path."),
+        click.option("-isystem", "isystem", multiple=True, metavar="DIR", help="Add DIR as a system include directory."),
+        click.option("-D", "defines", multiple=True, metavar="NAME[=VAL]", help="Define a macro."),
+        click.option("-U", "undefines", multiple=True, metavar="NAME", help="Undefine a macro."),
+        click.option("-include", "include_files", multiple=True, metavar="FILE", help="Include FILE first."),
+        click.option("-std", "std", metavar="STD", help="C standard, e.g. -std=c99 or -std=gnu89."),
+        click.option("--compile-db", "compile_db", metavar="FILE|DIR",
+                     help="Take the file's flags from a JSON compilation database (compile_commands.json)."),
+        click.option("--assume-pure", "assume_pure", multiple=True, metavar="NAME",
+                     help="Treat calls to NAME as free of side effects."),
+        click.option("--assume", "assumptions", multiple=True, metavar="COND",
+                     help="Assert a condition on parameters, e.g. 'n >= 1' (recorded in the guard, not checked)."),
+        click.option("--debug", is_flag=True, help="Show tracebacks of internal errors."),
+    ]
+    for o in reversed(opts):
+        f = o(f)
+    return f
+
+
+def _flags(path: str, kw: dict) -> CompileFlags:
+    flags = from_options(kw["includes"], kw["isystem"], kw["defines"], kw["undefines"], kw["include_files"],
+                         kw["std"])
+    if kw.get("compile_db"):
+        flags = from_compile_db(kw["compile_db"], path).plus(flags)
+    return flags
+
+
+def reporting(f):
+    """Turn LooptileError into its message and exit code; anything else is an internal error (3)."""
+    @functools.wraps(f)
+    def wrapper(*args, **kw):
+        try:
+            return f(*args, **kw)
+        except LooptileError as exc:
+            click.echo(exc.render(), err=True)
+            sys.exit(exc.exit_code)
+        except (click.exceptions.Exit, click.ClickException, SystemExit):
+            raise
+        except Exception as exc:  # noqa: BLE001 - the one place that catches everything
+            if kw.get("debug"):
+                traceback.print_exc()
+            click.echo(f"looptile: internal error: {type(exc).__name__}: {exc}; please report it with the input "
+                       "file (run with --debug for the traceback)", err=True)
+            sys.exit(EXIT_INTERNAL)
+    return wrapper
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(package_name="looptile")
+def main() -> None:
+    """Tile C loop nests, with the legality of every rewrite proven by dependence analysis."""
+
+
+@main.command()
+@click.argument("files", nargs=-1, required=True)
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON document keyed by file.")
+@frontend_options
+@reporting
+def analyze(files: tuple[str, ...], as_json: bool, **kw) -> None:
+    """List every loop nest with its loops, dependences and tileable bands."""
+    doc: dict[str, dict] = {}
+    texts = []
+    status = 0
+    for path in files:
+        try:
+            tu = pipeline.load(path, _flags(path, kw))
+        except LooptileError as exc:
+            status = 2
+            doc[path] = {"nests": [], "error": exc.headline()}
+            texts.append(exc.render())
+            continue
+        reports = [analyze_mod.report(tu, s, frozenset(kw["assume_pure"]), tuple(kw["assumptions"]))
+                   for s in analyze_mod.reported_sites(tu)]
+        doc[path] = {"nests": [r.as_json() for r in reports], "error": None}
+        texts.append(analyze_mod.text_table(path, reports))
+    if as_json:
+        click.echo(json.dumps(doc, indent=2))
+    else:
+        for t in texts:
+            click.echo(t, err=t.startswith(tuple(files)) and ": error:" in t.split("\n")[0])
+    sys.exit(status)
+
+
+def _parse_sizes(spec: str | None) -> tuple[tuple[str | None, int], ...]:
+    if not spec:
+        return ()
+    out = []
+    for item in spec.split(","):
+        item = item.strip()
+        name, eq, value = item.partition("=")
+        if not eq:
+            name, value = None, item
+        try:
+            n = int(value)
+        except ValueError:
+            raise UsageError(f"--sizes item '{item}' is not NAME=SIZE or SIZE with an integer size") from None
+        out.append((name.strip() if name else None, n))
+    return tuple(out)
+
+
+def _command_text(path: str, nest: str, sizes: str | None, order: str | None, remainder: str, kw: dict) -> str:
+    parts = ["looptile", "tile", path, "--nest", nest]
+    if sizes:
+        parts += ["--sizes", sizes]
+    if order:
+        parts += ["--order", order]
+    if remainder != "split":
+        parts += ["--remainder", remainder]
+    flags = _flags(path, kw) if not kw.get("compile_db") else None
+    if kw.get("compile_db"):
+        parts += ["--compile-db", kw["compile_db"]]
+    elif flags and flags.args:
+        parts += list(flags.args)
+    return " ".join(shlex.quote(p) for p in parts)
+
+
+@main.command()
+@click.argument("file")
+@click.option("--nest", "nest", required=True, metavar="SEL", help="L<line>, FUNC or FUNC:K.")
+@click.option("--sizes", metavar="SPEC", help="Tile sizes: i=32,j=32 or 32,32 (outermost loops).")
+@click.option("--order", metavar="LIST", help="New loop order, e.g. ii,kk,jj,i,k,j (ii or i.1 = tile loop of i).")
+@click.option("--remainder", type=click.Choice(["split", "clamp"]), default="split", show_default=True,
+              help="split: fast path for whole tiles; clamp: min-style bounds only.")
+@click.option("--diff", "as_diff", is_flag=True, help="Print a unified diff instead of the file.")
+@click.option("-o", "--output", metavar="OUT", help="Write the result to OUT.")
+@click.option("--in-place", is_flag=True, help="Replace FILE (atomically, mode kept).")
+@click.option("--force", is_flag=True, help="Tile a nest that looptile already rewrote.")
+@frontend_options
+@reporting
+def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: str, as_diff: bool,
+         output: str | None, in_place: bool, force: bool, **kw) -> None:
+    """Strip-mine a band of loops and move the tile loops outward, if the analysis proves it legal."""
+    if sum([as_diff, bool(output), in_place]) > 1:
+        raise UsageError("choose one of --diff, -o OUT and --in-place")
+    req = TileRequest(_parse_sizes(sizes), tuple(x.strip() for x in order.split(",")) if order else None, remainder)
+    opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), force,
+                                _command_text(file, nest, sizes, order, remainder, kw))
+    tu = pipeline.load(file, _flags(file, kw))
+    outcome = pipeline.tile(tu, nest, req, opts)
+    for note in outcome.notes:
+        click.echo(f"{file}:{outcome.nest.line}:{outcome.nest.col}: note: {note}", err=True)
+    if as_diff:
+        rel = os.path.relpath(file) if not os.path.relpath(file).startswith("..") else file
+        sys.stdout.write(unified_diff(rel, outcome.original, outcome.new))
+    elif output:
+        write_atomic(output, outcome.new, mode_from=file)
+    elif in_place:
+        if outcome.new != outcome.original:
+            write_atomic(file, outcome.new)
+    else:
+        sys.stdout.flush()
+        sys.stdout.buffer.write(outcome.new)
+        sys.stdout.flush()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

@@ -1,0 +1,284 @@
+"""Emission: the new loop structure as C text in the file's own style.
+
+Loop headers come from templates/*.c.j2; bodies are copied verbatim from the
+original text (comments and macros included) and only re-indented.  The
+iteration order of every emitted form is exactly the plan's schedule.
+"""
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+import jinja2
+
+from .model import Loop, Nest
+from .source import SourceFile, tokenize
+from .transform.tile import Slot, TilePlan
+
+
+def _template_dir() -> Path:
+    here = Path(__file__).resolve().parent
+    for cand in (here / "templates", here.parent / "templates"):
+        if cand.is_dir():
+            return cand
+    raise FileNotFoundError("looptile templates directory not found")
+
+
+_ENV = jinja2.Environment(
+    loader=jinja2.FileSystemLoader(str(_template_dir())),
+    undefined=jinja2.StrictUndefined,
+    keep_trailing_newline=True,
+    autoescape=False,
+)
+
+
+def render(template: str, **values: object) -> str:
+    return _ENV.get_template(template).render(**values).rstrip("\n")
+
+
+_LOW_PRECEDENCE = {"<<", ">>", "<", ">", "<=", ">=", "==", "!=", "&", "^", "|", "&&", "||", "?", ":", "=", ","}
+
+
+def paren(text: str) -> str:
+    """``text`` wrapped in parentheses unless it binds at least as tightly as binary minus."""
+    toks = tokenize(text)
+    depth = 0
+    for t in toks:
+        if t.text in "([":
+            depth += 1
+        elif t.text in ")]":
+            depth -= 1
+        elif depth == 0 and t.kind == "punct" and t.text in _LOW_PRECEDENCE:
+            return f"({text})"
+    return text
+
+
+def unsigned_of(lp: Loop) -> str:
+    return "unsigned long" if lp.ctype.bits == 64 else "unsigned"
+
+
+@dataclass(frozen=True)
+class Line:
+    indent: str
+    text: str
+
+
+@dataclass(frozen=True)
+class EmitFacts:
+    """What the analysis established for emission (plain data from deps.py)."""
+
+    wide_distance: frozenset[str] = frozenset()  # loops whose `ub - ii` must be computed unsigned
+    c89: bool = False
+
+
+class NestEmitter:
+    def __init__(self, src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts) -> None:
+        self.src, self.nest, self.plan, self.facts = src, nest, plan, facts
+        self.unit = src.indent_unit
+        self.base = src.indent_of(nest.start)
+        inner = nest.perfect[-1]
+        self.body_indent = src.indent_of(inner.for_offset)
+        self.loops = {lp.iterator: lp for lp in nest.perfect}
+
+    # -- pieces of loop headers
+    def _decl(self, lp: Loop, tile: bool) -> str:
+        if self.facts.c89:
+            return ""
+        if lp.declared_in_for or tile:
+            return lp.ctype.spelling + " "
+        return ""
+
+    def _limit(self, lp: Loop) -> str:
+        return paren(lp.limit.text)
+
+    def _dist(self, lp: Loop, v: str) -> str:
+        far = self._limit(lp)
+        if lp.iterator in self.facts.wide_distance:
+            u = unsigned_of(lp)
+            return f"({u}){far} - ({u}){v}" if lp.direction > 0 else f"({u}){v} - ({u}){far}"
+        return f"{far} - {v}" if lp.direction > 0 else f"{v} - {far}"
+
+    def _past(self, lp: Loop) -> str:
+        far = self._limit(lp)
+        if not lp.inclusive:
+            return far
+        return f"{far} + 1" if lp.direction > 0 else f"{far} - 1"
+
+    def _step_text(self, lp: Loop) -> str:
+        toks = [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
+        semis = [k for k, t in enumerate(toks) if t.text == ";"]
+        third = toks[semis[-1] + 1:-1]
+        return self.src.text[third[0].start:third[-1].end]
+
+    def _full(self, lp: Loop, size: int) -> int:
+        """Smallest distance to the bound for which a whole tile of ``size`` iterations remains."""
+        return lp.step * (size - 1) + (0 if lp.inclusive else 1)
+
+    def tile_header(self, s: Slot) -> str:
+        lp = self.loops[s.iterator]
+        span = lp.step * (s.size or 1)
+        return render("tile_loop.c.j2", decl=self._decl(lp, True), name=s.name, start=lp.start.text, op=lp.op,
+                      limit=self._limit(lp), dist=self._dist(lp, s.name), more=">=" if lp.inclusive else ">",
+                      span=span, sign="+" if lp.direction > 0 else "-", past=self._past(lp))
+
+    def point_header(self, s: Slot, tile: str, full: bool) -> str:
+        lp = self.loops[s.iterator]
+        span = lp.step * (s.size or 1)
+        if full:
+            return render("point_loop_full.c.j2", decl=self._decl(lp, False), name=s.name, tile=tile,
+                          op="<" if lp.direction > 0 else ">", sign="+" if lp.direction > 0 else "-", span=span,
+                          step=self._step_text(lp))
+        offset = f"{s.name} - {tile}" if lp.direction > 0 else f"{tile} - {s.name}"
+        return render("point_loop_clamp.c.j2", decl=self._decl(lp, False), name=s.name, start=tile, op=lp.op,
+                      limit=self._limit(lp), offset=offset, span=span, step=self._step_text(lp))
+
+    def plain_header(self, s: Slot) -> str:
+        lp = self.loops[s.iterator]
+        return self.src.text[lp.for_offset:lp.header_end]
+
+    def full_test(self, slots: list[Slot], tiles: dict[str, str]) -> str:
+        parts = []
+        for s in slots:
+            if s.kind == "point":
+                lp = self.loops[s.iterator]
+                parts.append(f"{self._dist(lp, tiles[s.iterator])} >= {self._full(lp, s.size or 1)}")
+        return " && ".join(parts)
+
+    # -- structure
+    def body_lines(self, indent: str) -> list[Line]:
+        inner = self.nest.perfect[-1]
+        text = self.src.text[inner.body_start:inner.body_end].replace("\r\n", "\n")
+        raw = text.split("\n")
+        out = []
+        for k, line in enumerate(raw):
+            if k == 0:
+                out.append(Line(indent, line))
+            elif not line.strip():
+                out.append(Line("", ""))
+            elif line.startswith(self.body_indent):
+                out.append(Line(indent, line[len(self.body_indent):]))
+            else:
+                out.append(Line("", line))
+        return out
+
+    def _body_same_line(self) -> bool:
+        inner = self.nest.perfect[-1]
+        return "\n" not in self.src.text[inner.header_end:inner.body_start]
+
+    def _body_rel_indent(self) -> str:
+        inner = self.nest.perfect[-1]
+        ind = self.src.indent_of(inner.body_start)
+        if ind.startswith(self.body_indent) and len(ind) > len(self.body_indent):
+            return ind[len(self.body_indent):]
+        return self.unit
+
+    def loops_and_body(self, headers: list[str], depth: int) -> list[Line]:
+        out = []
+        for h in headers:
+            out.append(Line(self.base + self.unit * depth, h))
+            depth += 1
+        ind = self.base + self.unit * (depth - 1)
+        body = self.body_lines(ind)
+        if self._body_same_line() and out:
+            first = out.pop()
+            out.append(Line(first.indent, first.text + " " + body[0].text))
+        else:
+            rel = self._body_rel_indent() if out else ""
+            out.append(Line(ind + rel, body[0].text))
+        out.extend(body[1:])
+        return out
+
+    def nest_lines(self) -> list[Line]:
+        plan = self.plan
+        slots = list(plan.slots)
+        tiles: dict[str, str] = {}
+        headers: list[str] = []
+        tile_positions = [k for k, s in enumerate(slots) if s.kind == "tile"]
+        if not tile_positions:
+            return self.loops_and_body([self.plain_header(s) for s in slots], 0)
+        last_tile = tile_positions[-1]
+        single = len(plan.band) == 1 and plan.remainder == "split"
+        for k, s in enumerate(slots[: last_tile + (0 if single else 1)]):
+            if s.kind == "tile":
+                tiles[s.iterator] = s.name
+                headers.append(self.tile_header(s))
+            elif s.kind == "point":
+                headers.append(self.point_header(s, tiles[s.iterator], full=False))
+            else:
+                headers.append(self.plain_header(s))
+        rest = slots[last_tile + 1:]
+        depth = len(headers)
+        if single:
+            return self._main_and_remainder(headers, slots[last_tile], rest)
+        if plan.remainder == "clamp" or not any(s.kind == "point" for s in rest):
+            inner = [self.point_header(s, tiles[s.iterator], False) if s.kind == "point" else self.plain_header(s)
+                     for s in rest]
+            return self.loops_and_body(headers + inner, 0)
+        out = self._headers_only(headers, 0)
+        ind = self.base + self.unit * depth
+        fast = [self.point_header(s, tiles[s.iterator], True) if s.kind == "point" else self.plain_header(s)
+                for s in rest]
+        slow = [self.point_header(s, tiles[s.iterator], False) if s.kind == "point" else self.plain_header(s)
+                for s in rest]
+        out.append(Line(ind, f"if ({self.full_test(rest, tiles)}) {{"))
+        out.extend(self.loops_and_body(fast, depth + 1))
+        out.append(Line(ind, "} else {"))
+        out.extend(self.loops_and_body(slow, depth + 1))
+        out.append(Line(ind, "}"))
+        return out
+
+    def _headers_only(self, headers: list[str], depth: int) -> list[Line]:
+        return [Line(self.base + self.unit * (depth + k), h) for k, h in enumerate(headers)]
+
+    def _main_and_remainder(self, headers: list[str], tile: Slot, rest: list[Slot]) -> list[Line]:
+        """One strip-mined loop: a main loop over whole tiles, then the remainder loop."""
+        lp = self.loops[tile.iterator]
+        out = self._headers_only(headers, 0)
+        depth = len(headers)
+        ind = self.base + self.unit * depth
+        span = lp.step * (tile.size or 1)
+        out.append(Line(ind, "{"))
+        out.append(Line(ind + self.unit, f"{lp.ctype.spelling} {tile.name};"))
+        main = render("main_loop.c.j2", name=tile.name, start=lp.start.text, op=lp.op, limit=self._limit(lp),
+                      dist=self._dist(lp, tile.name), full=self._full(lp, tile.size or 1), span=span,
+                      sign="+" if lp.direction > 0 else "-")
+        fast = [main] + [self.point_header(s, tile.name, True) if s.kind == "point" else self.plain_header(s)
+                         for s in rest]
+        out.extend(self.loops_and_body(fast, depth + 1))
+        remainder = []
+        for s in rest:
+            if s.kind == "point":
+                remainder.append(render("remainder_loop.c.j2", decl=self._decl(lp, False), name=s.name,
+                                        tile=tile.name, op=lp.op, limit=self._limit(lp), step=self._step_text(lp)))
+            else:
+                remainder.append(self.plain_header(s))
+        out.extend(self.loops_and_body(remainder, depth + 1))
+        out.append(Line(ind, "}"))
+        return out
+
+    def c89_wrap(self, lines: list[Line]) -> list[Line]:
+        decls = [f"{self.loops[s.iterator].ctype.spelling} {s.name};" for s in self.plan.slots if s.kind == "tile"]
+        if not self.facts.c89 or not decls or len(self.plan.band) == 1 and self.plan.remainder == "split":
+            return lines
+        shifted = [Line(ln.indent + self.unit if ln.indent.startswith(self.base) else ln.indent, ln.text)
+                   for ln in lines]
+        return [Line(self.base, "{")] + [Line(self.base + self.unit, d) for d in decls] + shifted + \
+               [Line(self.base, "}")]
+
+
+def emit_nest(src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, guard: str) -> str:
+    """The replacement text for nest.start..nest.end (first line starts at the for's column)."""
+    em = NestEmitter(src, nest, plan, facts)
+    lines = [Line(em.base, ln) for ln in guard.split("\n")]
+    lines += [Line(em.base, c.replace("\r\n", "\n")) for c in nest.header_comments]
+    lines += em.c89_wrap(em.nest_lines())
+    text = render("nest.c.j2", lines=lines)
+    return text.replace("\n", src.newline) if src.newline != "\n" else text
+
+
+def guard_comment(what: str, constrained: list[str], assumptions: str, command: str) -> str:
+    return render("guard.c.j2", what=what, constrained=constrained, assumptions=assumptions, command=command)
+
+
+GUARD_MARK = re.compile(r"/\*\s*looptile:")

@@ -1,0 +1,242 @@
+"""The tile job from file to new bytes: load, select, model, prove, emit, check, splice.
+
+Library code: returns values, raises LooptileError subclasses, never exits.
+"""
+from __future__ import annotations
+
+import os
+import re
+import subprocess
+from dataclasses import dataclass, field
+
+from pycparser import c_parser
+
+from . import extract, frontend, toolchain
+from .deps import Dependence, Legality, NestAnalysis, Witness
+from .emit import GUARD_MARK, EmitFacts, emit_nest, guard_comment
+from .errors import InternalError, Refusal, UsageError
+from .flags import CompileFlags
+from .frontend import LoopSite, TranslationUnit
+from .model import Nest
+from .source import SourceFile, read_source
+from .splice import Edit, apply_edits
+from .transform.tile import TilePlan, TileRequest, plan_tiling
+
+
+@dataclass(frozen=True)
+class TileOptions:
+    assumptions: tuple[str, ...] = ()  # --assume, recorded, not checked
+    assume_pure: frozenset[str] = frozenset()
+    force: bool = False
+    command: str = ""  # the command line that produces the rewrite, for the guard comment
+
+
+@dataclass(frozen=True)
+class TileOutcome:
+    path: str
+    original: bytes
+    new: bytes
+    nest: Nest
+    plan: TilePlan
+    notes: tuple[str, ...] = field(default=())
+
+
+def load(path: str, flags: CompileFlags) -> TranslationUnit:
+    return frontend.load(read_source(path), flags)
+
+
+# ---------------------------------------------------------------- selection
+
+def select(tu: TranslationUnit, sel: str) -> LoopSite:
+    """``L<line>``, ``FUNC`` or ``FUNC:K`` to the outermost loop of a nest."""
+    path = tu.source.path
+    m = re.fullmatch(r"L(\d+)", sel)
+    names = [f.name for f in tu.functions]
+    if m and sel not in names:
+        line = int(m.group(1))
+        sites = sorted((s for s in tu.loops() if s.line == line), key=lambda s: s.token_index or 0)
+        if not sites:
+            raise UsageError(f"no for loop starts on line {line}; run 'looptile analyze {path}' to list the nests",
+                             path=path, line=line if line <= len(tu.source.line_starts) else None)
+        first = sites[0]
+        siblings = [s for s in sites[1:] if not _inside(s, first)]
+        if siblings:
+            cols = ", ".join(f"{path}:{line}:{tu.source.line_col(tu.tokens[s.token_index].start)[1]}"
+                             for s in [first] + siblings if s.token_index is not None)
+            raise UsageError(f"two nests start on line {line} ({cols}); select one as FUNC:K", path=path, line=line)
+        return first
+    func, _, k = sel.partition(":")
+    if func not in names:
+        raise UsageError(f"no function '{func}' with a loop nest in this file (functions: "
+                         f"{', '.join(names) or 'none'}); a selector is L<line>, FUNC or FUNC:K", path=path)
+    if k and not k.isdigit():
+        raise UsageError(f"in '{sel}', K must be a positive number")
+    f = next(f for f in tu.functions if f.name == func)
+    top = [s for s in f.loops if s.parent is None]
+    idx = int(k) if k else 1
+    if not 1 <= idx <= len(top):
+        raise UsageError(f"function '{func}' has {len(top)} top-level loop nest(s); {sel} does not exist", path=path)
+    return top[idx - 1]
+
+
+def _inside(s: LoopSite, outer: LoopSite) -> bool:
+    while s.parent is not None:
+        s = s.parent
+        if s is outer:
+            return True
+    return False
+
+
+# ---------------------------------------------------------------- messages
+
+def describe_witness(what: str, w: Witness, nest: Nest) -> tuple[str, list[str]]:
+    verb_src = "writes" if w.source_writes else "reads"
+    verb_dst = "writes" if w.sink_writes else "reads"
+    head = (f"{what} would run {w.sink.render()} before {w.source.render()}, but {w.source.render()} {verb_src} "
+            f"{w.element}, which {w.sink.render()} {verb_dst} ({w.kind} dependence)")
+    details = []
+    if w.params:
+        details.append("for example with " + ", ".join(f"{k} = {v}" for k, v in w.params))
+    lines = {w.source.statement: w.source.line, w.sink.statement: w.sink.line}
+    for name, line in sorted(lines.items()):
+        details.append(f"{name} is the statement at {nest.path}:{line}")
+    arr = next((a for a in nest.arrays if a.name == w.element.split("[")[0]), None)
+    if arr is not None and arr.ndims == 0 and not arr.local and arr.elem.kind == "float":
+        details.append(f"'{arr.name}' is a floating-point accumulation: reordering it would change the rounding "
+                       "of the result")
+    elif arr is not None and arr.local and arr.ndims == len(nest.perfect) and arr.elem.kind == "float":
+        pass
+    return head, details
+
+
+def summarize(deps: list[Dependence]) -> list[str]:
+    groups: dict[tuple[str, str], list[str]] = {}
+    for d in deps:
+        vec = "(" + ", ".join(map(str, d.distance)) + ")" if d.distance is not None else "(" + ", ".join(d.direction) + ")"
+        groups.setdefault((d.array, vec), [])
+        if d.kind not in groups[(d.array, vec)]:
+            groups[(d.array, vec)].append(d.kind)
+    return [f"{arr} {'/'.join(kinds)} {vec}" for (arr, vec), kinds in groups.items()]
+
+
+# ---------------------------------------------------------------- the tile job
+
+def analyse(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str],
+            assumptions: tuple[str, ...]) -> tuple[Nest, NestAnalysis]:
+    nest = extract.build_nest(tu, site, assume_pure)
+    analysis = NestAnalysis(nest, assumptions)
+    for o in analysis.failing_obligations():
+        raise Refusal(f"{o.what} is computed in unsigned arithmetic and can wrap around below zero, so C does not "
+                      "compute what the analysis would assume; rewrite the bound or add --assume",
+                      path=nest.path, line=o.line, column=o.col, source_line=tu.source.line_text(o.line))
+    return nest, analysis
+
+
+def _check_request_side(tu: TranslationUnit, nest: Nest, plan: TilePlan, opts: TileOptions) -> None:
+    src = tu.source
+    before = src.text[: nest.start].rstrip()
+    if before.endswith("*/"):
+        opening = before.rfind("/*")
+        if opening >= 0 and GUARD_MARK.match(before[opening:]) and not opts.force:
+            raise Refusal("this nest already carries a looptile guard comment (it was rewritten before); "
+                          "rewrite the original nest, or pass --force", path=nest.path, line=nest.line,
+                          column=nest.col, source_line=src.line_text(nest.line))
+    for it in nest.outer_declared:
+        off = extract.live_after(tu, nest, it)
+        if off is not None:
+            line, col = src.line_col(off)
+            raise Refusal(f"the value of '{it}' after the nest is used here, and the rewrite leaves '{it}' with a "
+                          f"different final value; declare '{it}' in its for statement or assign it before use",
+                          path=nest.path, line=line, column=col, source_line=src.line_text(line))
+    for s in plan.slots:
+        lp = nest.loop(s.iterator)
+        if s.kind == "tile" and (lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators):
+            raise Refusal(f"tiling loop '{s.iterator}', whose bounds depend on another loop of the nest, is not "
+                          "supported yet", path=nest.path, line=lp.line, column=lp.col,
+                          source_line=src.line_text(lp.line))
+    if nest.macros_used and src.text[src.line_starts[nest.line - 1]: nest.start].strip():
+        raise Refusal("the nest needs a preprocessor guard for the macros its subscripts use, but it does not "
+                      "start its own line", path=nest.path, line=nest.line, column=nest.col)
+
+
+def emit_facts(nest: Nest, analysis: NestAnalysis, plan: TilePlan, c89: bool) -> EmitFacts:
+    wide = set()
+    for it in plan.band:
+        lp = nest.loop(it)
+        if lp.ctype.is_unsigned:
+            continue
+        outer = tuple(x for x in nest.iterators[: nest.iterators.index(it)])
+        near = lp.start.value if lp.direction > 0 else lp.limit.value
+        if not analysis.always_nonnegative(near, outer):
+            wide.add(it)
+    return EmitFacts(frozenset(wide), c89)
+
+
+def guard_text(nest: Nest, plan: TilePlan, analysis: NestAnalysis, opts: TileOptions) -> str:
+    deps = summarize(analysis.dependences())
+    constrained = []
+    if deps:
+        constrained.append("dependences kept: " + "; ".join(deps[:6]) + ("; ..." if len(deps) > 6 else ""))
+    else:
+        constrained.append("no dependences between iterations")
+    shared = [a.name for a in nest.arrays if not a.local and a.ndims > 0]
+    assumes = []
+    if len(shared) > 1:
+        assumes.append(f"the arrays {', '.join(shared)} do not overlap")
+    elif shared:
+        assumes.append(f"no other name aliases {shared[0]}")
+    assumes += [f"{a} (asserted by the user)" for a in opts.assumptions]
+    assumes += [f"{name} == {value} (checked by #if)" for name, value in nest.macros_used]
+    return guard_comment(plan.describe(), constrained, "; ".join(assumes) or "nothing", opts.command)
+
+
+def _macro_guard(nest: Nest, src: SourceFile) -> str:
+    lines = []
+    for name, value in nest.macros_used:
+        lines += [f"#if {name} != {value}",
+                  f'#error "looptile rewrote this nest for {name} == {value}; re-run looptile for this value"',
+                  "#endif"]
+    return "\n".join(lines)
+
+
+def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> TileOutcome:
+    src = tu.source
+    site = select(tu, sel)
+    nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions)
+    plan = plan_tiling(nest, req, tu.identifiers)
+    _check_request_side(tu, nest, plan, opts)
+    legality: Legality = analysis.check(list(plan.schedule))
+    if not legality.legal:
+        assert legality.witness is not None
+        what = (f"tiling ({', '.join(plan.band)})" if plan.band else
+                f"permuting ({', '.join(nest.iterators)}) to ({', '.join(s.name for s in plan.slots)})")
+        head, details = describe_witness(what, legality.witness, nest)
+        raise Refusal(head, path=nest.path, line=nest.line, column=nest.col,
+                      source_line=src.line_text(nest.line), details=details)
+    facts = emit_facts(nest, analysis, plan, tu.flags.c89)
+    text = emit_nest(src, nest, plan, facts, guard_text(nest, plan, analysis, opts))
+    guard = _macro_guard(nest, src)
+    if guard:
+        text = "\n".join(guard.split("\n")[:1] + [src.indent_of(nest.start) + g for g in guard.split("\n")[1:]]) \
+            + "\n" + src.indent_of(nest.start) + text
+        text = text.replace("\n", src.newline) if src.newline != "\n" else text
+    new = apply_edits(src.data, [Edit(nest.start, nest.end, text)])
+    check_parses(src, tu.flags, new)
+    notes = tuple(f"assumed: {a}" for a in opts.assumptions)
+    return TileOutcome(src.path, src.data, new, nest, plan, notes)
+
+
+def check_parses(src: SourceFile, flags: CompileFlags, new: bytes) -> None:
+    """Preprocess and parse the rewritten file; a failure is a looptile bug, never a broken file."""
+    directory = os.path.dirname(os.path.abspath(src.path))
+    argv = toolchain.compiler() + ["-E", f"-I{directory}"] + list(flags.args) + \
+        list(toolchain.PARSEABLE_HEADER_FLAGS) + ["-x", "c", "-"]
+    proc = subprocess.run(argv, input=new, capture_output=True, cwd=flags.directory, timeout=120)
+    if proc.returncode != 0:
+        raise InternalError("the rewritten file does not preprocess; this is a looptile bug, please report it",
+                            path=src.path, details=proc.stderr.decode("latin-1").splitlines()[:10])
+    try:
+        c_parser.CParser().parse(proc.stdout.decode("latin-1"), "<rewritten>")
+    except Exception as exc:
+        raise InternalError(f"the rewritten file does not parse ({exc}); this is a looptile bug, please report it",
+                            path=src.path) from exc
