@@ -355,3 +355,119 @@ def _pw_const(pa: isl.PwAff) -> int:
 
 def _eval(a: Affine, env: dict[str, int]) -> int:
     return a.const + sum(c * env.get(n, 0) for n, c in a.terms)
+
+
+class BoundsNotAffine(Exception):
+    """isl gave a bound that is not one affine expression (several pieces or a division)."""
+
+
+def _aff_to_affine(aff: isl.Aff, names: list[str]) -> Affine:
+    if aff.dim(isl.dim_type.div) and any(
+            not aff.get_coefficient_val(isl.dim_type.div, k).is_zero() for k in range(aff.dim(isl.dim_type.div))):
+        raise BoundsNotAffine("division")
+    terms = {}
+    for k, n in enumerate(names):
+        c = aff.get_coefficient_val(isl.dim_type.param, k)
+        if not c.is_zero():
+            if not c.is_int():
+                raise BoundsNotAffine("rational")
+            terms[_from_isl(n)] = c.to_python()
+    const = aff.get_constant_val()
+    if not const.is_int():
+        raise BoundsNotAffine("rational")
+    return Affine(tuple(sorted(terms.items())), const.to_python())
+
+
+def _single_affine(pa: isl.PwAff) -> Affine:
+    pieces: list[isl.Aff] = []
+    pa.foreach_piece(lambda _s, aff: pieces.append(aff))
+    if len(pieces) != 1:
+        raise BoundsNotAffine("pieces")
+    space = pa.get_space()
+    names = [space.get_dim_name(isl.dim_type.param, k) for k in range(space.dim(isl.dim_type.param))]
+    return _aff_to_affine(pieces[0], names)
+
+
+def _constraint_affines(bset: isl.BasicSet) -> list[tuple[Affine, bool]]:
+    out: list[tuple[Affine, bool]] = []
+    space = bset.get_space()
+    names = [space.get_dim_name(isl.dim_type.param, k) for k in range(space.dim(isl.dim_type.param))]
+
+    def one(c: isl.Constraint) -> None:
+        terms = {}
+        for k, n in enumerate(names):
+            v = c.get_coefficient_val(isl.dim_type.param, k)
+            if not v.is_zero():
+                terms[_from_isl(n)] = v.to_python()
+        out.append((Affine(tuple(sorted(terms.items())), c.get_constant_val().to_python()), c.is_equality()))
+
+    bset.foreach_constraint(one)
+    return out
+
+
+def _params_set(analysis: NestAnalysis, extra: list[str], body: str) -> isl.Set:
+    names = analysis.params + [_isl_name(e) for e in extra]
+    return isl.Set("[" + ", ".join(names) + "] -> " + body, context=_ctx)
+
+
+def band_hull(analysis: NestAnalysis, iterator: str, kept: tuple[str, ...]) -> tuple[Affine, Affine]:
+    """Smallest and largest value of ``iterator`` over the nest, given the ``kept`` iterators (as values).
+
+    Raises BoundsNotAffine when a bound is not a single affine expression.
+    """
+    nest = analysis.nest
+    its = nest.iterators[: nest.iterators.index(iterator) + 1]
+    others = [i for i in its if i != iterator and i not in kept]
+    cons = " and ".join(analysis.loop_constraints(analysis.loops[i]) for i in its)
+    s = _params_set(analysis, list(kept), f"{{ X[{', '.join(_isl_name(i) for i in [iterator] + others)}] : {cons} }}")
+    s = s.intersect_params(_lift(analysis.context, s))
+    if others:
+        s = s.project_out(isl.dim_type.set, 1, len(others))
+    nonempty = s.params()
+    lo, hi = s.dim_min(0).gist(nonempty), s.dim_max(0).gist(nonempty)
+    return _single_affine(lo), _single_affine(hi)
+
+
+def _lift(ctx_set: isl.Set, target: isl.Set) -> isl.Set:
+    """The parameter context in the parameter space of ``target``."""
+    return ctx_set.align_params(target.get_space()) if ctx_set.dim(isl.dim_type.param) else ctx_set
+
+
+def full_tile_constraints(analysis: NestAnalysis, boxed: list[tuple[str, str, int]], kept: tuple[str, ...],
+                          known: list[Affine]) -> list[tuple[Affine, bool]]:
+    """Conditions on tile origins for the whole tile to lie in the domain.
+
+    ``boxed``: (iterator, tile iterator name, span) of the point loops inside the test;
+    ``kept``: iterators with a value at the test; ``known``: facts ``a >= 0`` already
+    tested or true there (they are left out of the answer).  Returns ``(a, is_equality)``
+    meaning ``a >= 0`` (or ``a == 0``); raises BoundsNotAffine for a non-convex answer.
+    """
+    nest = analysis.nest
+    band = [b for b, _, _ in boxed]
+    last = max(nest.iterators.index(b) for b in band)
+    its = nest.iterators[: last + 1]
+    others = [i for i in its if i not in band and i not in kept]
+    tiles = [t for _, t, _ in boxed]
+    extra = list(kept) + tiles
+    cons = " and ".join(analysis.loop_constraints(analysis.loops[i]) for i in its)
+    dims = band + others
+    dom = _params_set(analysis, extra, f"{{ X[{', '.join(_isl_name(i) for i in dims)}] : {cons} }}")
+    if others:
+        dom = dom.project_out(isl.dim_type.set, len(band), len(others))
+    box_parts = []
+    for it, t, span in boxed:
+        lp = analysis.loops[it]
+        x, tt = _isl_name(it), _isl_name(t)
+        box_parts.append(f"{tt} <= {x} <= {tt} + {span - 1}" if lp.direction > 0 else f"{tt} - {span - 1} <= {x} <= {tt}")
+    box = _params_set(analysis, extra, f"{{ X[{', '.join(_isl_name(i) for i in band)}] : {' and '.join(box_parts)} }}")
+    full = box.subtract(dom).params().complement()
+    facts = [f"{k.render(_isl_name)} >= 0" for k in known] + \
+        [analysis.loop_constraints(analysis.loops[i]) for i in kept if i in analysis.loops]
+    known_s = _params_set(analysis, extra, "{ : " + (" and ".join(facts) or "true") + " }")
+    full = full.gist(known_s.intersect(_lift(analysis.context, known_s)))
+    full = full.coalesce()
+    bsets: list[isl.BasicSet] = []
+    full.foreach_basic_set(bsets.append)
+    if len(bsets) != 1 or bsets[0].dim(isl.dim_type.div):
+        raise BoundsNotAffine("the whole-tile test is not one conjunction")
+    return _constraint_affines(bsets[0])

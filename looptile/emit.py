@@ -12,7 +12,7 @@ from pathlib import Path
 
 import jinja2
 
-from .model import Loop, Nest
+from .model import Affine, Loop, Nest
 from .source import SourceFile, tokenize
 from .transform.tile import Slot, TilePlan
 
@@ -70,6 +70,69 @@ class EmitFacts:
 
     wide_distance: frozenset[str] = frozenset()  # loops whose `ub - ii` must be computed unsigned
     c89: bool = False
+    # Whole-tile conditions beyond the per-loop distance tests (non-rectangular bands):
+    # (a, is_equality) meaning a >= 0 or a == 0, over tile iterators, iterators and parameters.
+    full_extra: tuple[tuple[Affine, bool], ...] = ()
+
+
+def _is_int(text: str) -> bool:
+    return re.fullmatch(r"-?\d+", text.strip()) is not None
+
+
+def _minus(a: str, b: str) -> str:
+    if b.strip() == "0":
+        return a
+    if _is_int(a) and _is_int(b):
+        return str(int(a) - int(b))
+    return f"{a} - {paren(b) if _is_int(b) and b.strip().startswith('-') else b}"
+
+
+def _plus(a: str, k: int) -> str:
+    if _is_int(a):
+        return str(int(a) + k)
+    return f"{a} + {k}" if k >= 0 else f"{a} - {-k}"
+
+
+def c_affine(a: Affine, nest: Nest) -> str:
+    """An affine expression in C, parameters in their source spelling."""
+    spell = {p.name: (p.text if p.kind != "opaque" else paren(p.text)) for p in nest.params}
+    return a.render(lambda n: spell.get(n, n)).replace("*", " * ")
+
+
+def c_condition(a: Affine, eq: bool, nest: Nest) -> str:
+    """``a >= 0`` (or ``== 0``) written as ``positive terms >= negative terms + constant``."""
+    pos = Affine(tuple((n, c) for n, c in a.terms if c > 0))
+    neg = Affine(tuple((n, -c) for n, c in a.terms if c < 0), -a.const)
+    return f"{c_affine(pos, nest)} {'==' if eq else '>='} {c_affine(neg, nest)}"
+
+
+@dataclass(frozen=True)
+class SplitPoint:
+    """Where the whole-tile test goes: after the last tile loop."""
+
+    kept: tuple[str, ...]  # iterators with a value at the test
+    boxed: tuple[Slot, ...]  # point loops inside the test (their tiles form the box)
+    rect: tuple[str, ...]  # boxed loops tested by the distance form (bounds known at the test)
+
+
+def split_point(nest: Nest, plan: TilePlan) -> SplitPoint:
+    slots = list(plan.slots)
+    last = max((k for k, s in enumerate(slots) if s.kind == "tile"), default=-1)
+    kept = tuple(s.iterator for s in slots[: last + 1] if s.kind != "tile")
+    boxed = tuple(s for s in slots[last + 1:] if s.kind == "point")
+    rect = []
+    for s in boxed:
+        tile = next(t for t in slots if t.kind == "tile" and t.iterator == s.iterator)
+        lp = nest.loop(s.iterator)
+        uses = (lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators)
+        if tile.hull is None and uses <= set(kept):
+            rect.append(s.iterator)
+    return SplitPoint(kept, boxed, tuple(rect))
+
+
+def full_form(lp: Loop, size: int) -> int:
+    """Smallest distance to the bound for which a whole tile of ``size`` iterations remains."""
+    return lp.step * (size - 1) + (0 if lp.inclusive else 1)
 
 
 class NestEmitter:
@@ -80,6 +143,7 @@ class NestEmitter:
         inner = nest.perfect[-1]
         self.body_indent = src.indent_of(inner.for_offset)
         self.loops = {lp.iterator: lp for lp in nest.perfect}
+        self.hulls = {s.iterator: s.hull is not None for s in plan.slots if s.kind == "tile"}
 
     # -- pieces of loop headers
     def _decl(self, lp: Loop, tile: bool) -> str:
@@ -92,18 +156,19 @@ class NestEmitter:
     def _limit(self, lp: Loop) -> str:
         return paren(lp.limit.text)
 
-    def _dist(self, lp: Loop, v: str) -> str:
-        far = self._limit(lp)
+    def _dist(self, lp: Loop, v: str, far: str | None = None) -> str:
+        """Distance from ``v`` to the loop's far end, in a type where it cannot overflow."""
+        far = self._limit(lp) if far is None else far
         if lp.iterator in self.facts.wide_distance:
             u = unsigned_of(lp)
             return f"({u}){far} - ({u}){v}" if lp.direction > 0 else f"({u}){v} - ({u}){far}"
-        return f"{far} - {v}" if lp.direction > 0 else f"{v} - {far}"
+        return _minus(far, v) if lp.direction > 0 else _minus(v, far)
 
     def _past(self, lp: Loop) -> str:
         far = self._limit(lp)
         if not lp.inclusive:
             return far
-        return f"{far} + 1" if lp.direction > 0 else f"{far} - 1"
+        return _plus(far, 1 if lp.direction > 0 else -1)
 
     def _step_text(self, lp: Loop) -> str:
         toks = [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
@@ -112,15 +177,34 @@ class NestEmitter:
         return self.src.text[third[0].start:third[-1].end]
 
     def _full(self, lp: Loop, size: int) -> int:
-        """Smallest distance to the bound for which a whole tile of ``size`` iterations remains."""
-        return lp.step * (size - 1) + (0 if lp.inclusive else 1)
+        return full_form(lp, size)
 
     def tile_header(self, s: Slot) -> str:
         lp = self.loops[s.iterator]
         span = lp.step * (s.size or 1)
+        if s.hull is not None:
+            return self._hull_tile_header(s, lp, span)
         return render("tile_loop.c.j2", decl=self._decl(lp, True), name=s.name, start=lp.start.text, op=lp.op,
                       limit=self._limit(lp), dist=self._dist(lp, s.name), more=">=" if lp.inclusive else ">",
                       span=span, sign="+" if lp.direction > 0 else "-", past=self._past(lp))
+
+    def _hull_tile_header(self, s: Slot, lp: Loop, span: int) -> str:
+        """Tile loop over the loop's hull, written like a rectangular loop.
+
+        Up: from the smallest value while below the largest + 1; down: from the
+        largest value while not below the smallest.  Both ends are values the
+        original loop also computes, so no new overflow."""
+        assert s.hull is not None
+        lo, hi = s.hull
+        if lp.direction > 0:
+            near, far = c_affine(lo, self.nest), paren(c_affine(hi + Affine(const=1), self.nest))
+            op, more, past = "<", ">", far
+        else:
+            near, far = c_affine(hi, self.nest), paren(c_affine(lo, self.nest))
+            op, more, past = ">=", ">=", _plus(far, -1)
+        return render("tile_loop.c.j2", decl=self._decl(lp, True), name=s.name, start=near, op=op, limit=far,
+                      dist=self._dist(lp, s.name, far), more=more, span=span,
+                      sign="+" if lp.direction > 0 else "-", past=past)
 
     def point_header(self, s: Slot, tile: str, full: bool) -> str:
         lp = self.loops[s.iterator]
@@ -130,7 +214,11 @@ class NestEmitter:
                           op="<" if lp.direction > 0 else ">", sign="+" if lp.direction > 0 else "-", span=span,
                           step=self._step_text(lp))
         offset = f"{s.name} - {tile}" if lp.direction > 0 else f"{tile} - {s.name}"
-        return render("point_loop_clamp.c.j2", decl=self._decl(lp, False), name=s.name, start=tile, op=lp.op,
+        start = tile
+        if self.hulls.get(s.iterator):  # the tile grid starts below this loop's own start
+            own = paren(lp.start.text)
+            start = f"({tile} > {own} ? {tile} : {own})" if lp.direction > 0 else f"({tile} < {own} ? {tile} : {own})"
+        return render("point_loop_clamp.c.j2", decl=self._decl(lp, False), name=s.name, start=start, op=lp.op,
                       limit=self._limit(lp), offset=offset, span=span, step=self._step_text(lp))
 
     def plain_header(self, s: Slot) -> str:
@@ -142,7 +230,9 @@ class NestEmitter:
         for s in slots:
             if s.kind == "point":
                 lp = self.loops[s.iterator]
-                parts.append(f"{self._dist(lp, tiles[s.iterator])} >= {self._full(lp, s.size or 1)}")
+                if s.iterator in split_point(self.nest, self.plan).rect:
+                    parts.append(f"{self._dist(lp, tiles[s.iterator])} >= {self._full(lp, s.size or 1)}")
+        parts += [c_condition(a, eq, self.nest) for a, eq in self.facts.full_extra]
         return " && ".join(parts)
 
     # -- structure

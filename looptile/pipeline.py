@@ -11,13 +11,13 @@ from dataclasses import dataclass, field
 
 from pycparser import c_parser
 
-from . import extract, frontend, toolchain
+from . import deps, extract, frontend, toolchain
 from .deps import Dependence, Legality, NestAnalysis, Witness
-from .emit import GUARD_MARK, EmitFacts, emit_nest, guard_comment
+from .emit import GUARD_MARK, EmitFacts, emit_nest, full_form, guard_comment, split_point
 from .errors import InternalError, Refusal, UsageError
 from .flags import CompileFlags
 from .frontend import LoopSite, TranslationUnit
-from .model import Nest
+from .model import Affine, Nest
 from .source import SourceFile, read_source
 from .splice import Edit, apply_edits
 from .transform.tile import TilePlan, TileRequest, plan_tiling
@@ -148,28 +148,66 @@ def _check_request_side(tu: TranslationUnit, nest: Nest, plan: TilePlan, opts: T
             raise Refusal(f"the value of '{it}' after the nest is used here, and the rewrite leaves '{it}' with a "
                           f"different final value; declare '{it}' in its for statement or assign it before use",
                           path=nest.path, line=line, column=col, source_line=src.line_text(line))
-    for s in plan.slots:
-        lp = nest.loop(s.iterator)
-        if s.kind == "tile" and (lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators):
-            raise Refusal(f"tiling loop '{s.iterator}', whose bounds depend on another loop of the nest, is not "
-                          "supported yet", path=nest.path, line=lp.line, column=lp.col,
-                          source_line=src.line_text(lp.line))
     if nest.macros_used and src.text[src.line_starts[nest.line - 1]: nest.start].strip():
         raise Refusal("the nest needs a preprocessor guard for the macros its subscripts use, but it does not "
                       "start its own line", path=nest.path, line=nest.line, column=nest.col)
 
 
+def _hull_fn(analysis: NestAnalysis):
+    def hull(iterator: str, kept: tuple[str, ...]):
+        try:
+            return deps.band_hull(analysis, iterator, kept)
+        except deps.BoundsNotAffine as exc:
+            raise ValueError(str(exc)) from None
+    return hull
+
+
 def emit_facts(nest: Nest, analysis: NestAnalysis, plan: TilePlan, c89: bool) -> EmitFacts:
+    """Facts the emitted code relies on, established with isl."""
     wide = set()
-    for it in plan.band:
-        lp = nest.loop(it)
+    for s in plan.slots:
+        if s.kind != "tile":
+            continue
+        lp = nest.loop(s.iterator)
         if lp.ctype.is_unsigned:
             continue
-        outer = tuple(x for x in nest.iterators[: nest.iterators.index(it)])
-        near = lp.start.value if lp.direction > 0 else lp.limit.value
-        if not analysis.always_nonnegative(near, outer):
-            wide.add(it)
-    return EmitFacts(frozenset(wide), c89)
+        if s.hull is not None:  # the distance is taken from the hull's low end, given the defined iterators
+            near, loops = s.hull[0], s.defined
+        else:
+            near = lp.start.value if lp.direction > 0 else lp.limit.value
+            loops = tuple(x for x in nest.iterators[: nest.iterators.index(s.iterator)])
+        if not analysis.always_nonnegative(near, loops):
+            wide.add(s.iterator)
+    extra: tuple = ()
+    sp = split_point(nest, plan)
+    if plan.remainder == "split" and len(plan.band) > 1 and len(sp.rect) < len(sp.boxed):
+        known = []
+        tiles = {s.iterator: s.name for s in plan.slots if s.kind == "tile"}
+        for s in sp.boxed:
+            if s.iterator in sp.rect:
+                lp = nest.loop(s.iterator)
+                tt = Affine.symbol(tiles[s.iterator])
+                dist = lp.limit.value - tt if lp.direction > 0 else tt - lp.limit.value
+                known.append(dist - Affine(const=full_form(lp, s.size or 1)))
+        for s in plan.slots:  # where the tile loops run
+            if s.kind != "tile":
+                continue
+            tt, lp = Affine.symbol(s.name), nest.loop(s.iterator)
+            if s.hull is not None:
+                known += [tt - s.hull[0], s.hull[1] - tt]
+            elif not (lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators):
+                excl = Affine(const=0 if lp.inclusive else 1)
+                if lp.direction > 0:
+                    known += [tt - lp.start.value, lp.limit.value - tt - excl]
+                else:
+                    known += [lp.start.value - tt, tt - lp.limit.value - excl]
+        boxed = [(s.iterator, tiles[s.iterator], nest.loop(s.iterator).step * (s.size or 1)) for s in sp.boxed]
+        try:
+            extra = tuple(deps.full_tile_constraints(analysis, boxed, sp.kept, known))
+        except deps.BoundsNotAffine as exc:
+            raise Refusal(f"the whole-tile test of this band is not one conjunction of affine conditions ({exc}); "
+                          "use --remainder clamp", path=nest.path, line=nest.line, column=nest.col) from None
+    return EmitFacts(frozenset(wide), c89, extra)
 
 
 def guard_text(nest: Nest, plan: TilePlan, analysis: NestAnalysis, opts: TileOptions) -> str:
@@ -203,7 +241,7 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
     src = tu.source
     site = select(tu, sel)
     nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions)
-    plan = plan_tiling(nest, req, tu.identifiers)
+    plan = plan_tiling(nest, req, tu.identifiers, _hull_fn(analysis))
     _check_request_side(tu, nest, plan, opts)
     legality: Legality = analysis.check(list(plan.schedule))
     if not legality.legal:

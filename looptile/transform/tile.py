@@ -5,6 +5,7 @@ order as slots, and the schedule that deps.py proves and emit.py prints).
 """
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 from ..errors import Refusal, UsageError
@@ -24,6 +25,10 @@ class Slot:
     iterator: str  # the original loop's iterator
     name: str  # the emitted iterator name
     size: int | None = None  # tile size in iterations (tiled loops only)
+    # Tile loops of non-rectangular loops run over the loop's hull (smallest, largest value
+    # given the iterators defined outside the tile loop), computed by the analysis.
+    hull: tuple[Affine, Affine] | None = None
+    defined: tuple[str, ...] = ()  # iterators with a value where this loop starts
 
 
 @dataclass(frozen=True)
@@ -114,7 +119,10 @@ def _source_loop_names(nest: Nest) -> set[str]:
     return {lp.iterator for lp in nest.perfect + nest.inner}
 
 
-def plan_tiling(nest: Nest, req: TileRequest, taken: set[str]) -> TilePlan:
+HullFn = Callable[[str, tuple[str, ...]], tuple[Affine, Affine]]
+
+
+def plan_tiling(nest: Nest, req: TileRequest, taken: set[str], hull: HullFn | None = None) -> TilePlan:
     """The new loop order for ``req``; usage errors for impossible orders."""
     if not req.sizes and not req.order:
         raise UsageError("give --sizes (tiling) or --order (a permutation), or both")
@@ -146,18 +154,51 @@ def plan_tiling(nest: Nest, req: TileRequest, taken: set[str]) -> TilePlan:
     for k, (kind, it) in enumerate(order):
         if kind == "point" and ("tile", it) not in order[:k]:
             raise UsageError(f"--order places the point loop '{it}' outside its own tile loop '{names[it]}'")
-    slots = tuple(Slot(kind, it, names[it] if kind == "tile" else it, dict(zip(band, sizes)).get(it))
-                  for kind, it in order)
+    slots = []
+    defined: list[str] = []
+    for kind, it in order:
+        slot = Slot(kind, it, names[it] if kind == "tile" else it, dict(zip(band, sizes)).get(it),
+                    defined=tuple(defined))
+        if kind == "tile" and _uses_undefined(nest, it, defined):
+            slot = _hull_slot(nest, slot, hull)
+        if kind != "tile":
+            defined.append(it)
+        slots.append(slot)
+    slots = tuple(slots)
     _check_bounds_order(nest, slots)
     schedule = tuple(_dim(nest, s) for s in slots)
     return TilePlan(band, sizes, slots, req.remainder, schedule)
+
+
+def _uses_undefined(nest: Nest, it: str, defined: list[str]) -> bool:
+    lp = nest.loop(it)
+    return bool((lp.start.value.names() | lp.limit.value.names()) & (set(nest.iterators) - set(defined)))
+
+
+def _hull_slot(nest: Nest, slot: Slot, hull: HullFn | None) -> Slot:
+    lp = nest.loop(slot.iterator)
+    where = dict(path=nest.path, line=lp.line, column=lp.col)
+    if hull is None:
+        raise Refusal(f"tiling loop '{slot.iterator}' needs bounds from the analysis", **where)
+    if lp.step != 1:
+        raise Refusal(f"loop '{slot.iterator}' has step {lp.step} and bounds that depend on another loop of the "
+                      "band; tiling it is not supported", **where)
+    try:
+        lo_hi = hull(slot.iterator, slot.defined)
+    except ValueError as exc:
+        raise Refusal(f"the tile loop of '{slot.iterator}' needs bounds that are not one affine expression "
+                      f"({exc}); tile a rectangular band or choose another order", **where) from None
+    return Slot(slot.kind, slot.iterator, slot.name, slot.size, lo_hi, slot.defined)
 
 
 def _dim(nest: Nest, slot: Slot) -> ScheduleDim:
     if slot.kind != "tile":
         return ScheduleDim(slot.iterator)
     lp = nest.loop(slot.iterator)
-    return ScheduleDim(slot.iterator, block=lp.step * (slot.size or 1), origin=lp.start.value)
+    origin = lp.start.value
+    if slot.hull is not None:
+        origin = slot.hull[0] if lp.direction > 0 else slot.hull[1]
+    return ScheduleDim(slot.iterator, block=lp.step * (slot.size or 1), origin=origin)
 
 
 def _check_bounds_order(nest: Nest, slots: tuple[Slot, ...]) -> None:
