@@ -139,21 +139,21 @@ def int_affine(ctx: _Ctx, node: c_ast.Node) -> tuple[Affine, CType, list[Affine]
         if t.bits < ti.bits or (t.signed != ti.signed):
             obl = obl + [inner]  # value-preserving only for non-negative values that fit
         return inner, t, obl
-    raise NotAffine(f"the expression is not affine ({_describe(node)})", node)
+    raise NotAffine(_describe(node), node)
 
 
 def _describe(node: c_ast.Node) -> str:
     if isinstance(node, c_ast.BinaryOp):
-        return f"operator {node.op}"
+        return f"it uses operator {node.op}"
     if isinstance(node, c_ast.FuncCall):
-        return "a function call"
+        return "it calls a function"
     if isinstance(node, c_ast.ArrayRef):
-        return "an array element"
+        return "it reads an array element, so it is data-dependent"
     if isinstance(node, c_ast.StructRef):
-        return "a struct member"
+        return "it reads a struct member"
     if isinstance(node, c_ast.UnaryOp):
-        return f"operator {node.op}"
-    return type(node).__name__
+        return f"it uses operator {node.op}"
+    return f"it is a {type(node).__name__}"
 
 
 def _id_affine(ctx: _Ctx, node: c_ast.ID) -> tuple[Affine, CType, list[Affine]]:
@@ -693,7 +693,8 @@ class _Body:
             try:
                 a, t, obl = int_affine(ctx, s)
             except NotAffine as exc:
-                raise ctx.refuse(f"the subscript of '{name}' is not affine; {exc.reason}", exc.node or s) from None
+                raise ctx.refuse(f"a subscript of '{name}' is not an affine function of the loop iterators and "
+                                 f"parameters; {exc.reason}", exc.node or s) from None
             for o in obl:
                 ctx.obligations.append(Obligation(o, tuple(ctx.iterators), s.coord.line if s.coord else 0, 1,
                                                   f"a subscript of '{name}'"))
