@@ -100,9 +100,10 @@ def c_affine(a: Affine, nest: Nest) -> str:
 
 
 def c_condition(a: Affine, eq: bool, nest: Nest) -> str:
-    """``a >= 0`` (or ``== 0``) written as ``positive terms >= negative terms + constant``."""
-    pos = Affine(tuple((n, c) for n, c in a.terms if c > 0))
-    neg = Affine(tuple((n, -c) for n, c in a.terms if c < 0), -a.const)
+    """``a >= 0`` (or ``== 0``) as ``positive terms >= negative terms``, without any subtraction
+    (so it also means the same for unsigned operands)."""
+    pos = Affine(tuple((n, c) for n, c in a.terms if c > 0), max(a.const, 0))
+    neg = Affine(tuple((n, -c) for n, c in a.terms if c < 0), max(-a.const, 0))
     return f"{c_affine(pos, nest)} {'==' if eq else '>='} {c_affine(neg, nest)}"
 
 

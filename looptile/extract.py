@@ -15,7 +15,7 @@ from .errors import Refusal
 from .frontend import LoopSite, TranslationUnit
 from .model import Access, Affine, ArrayInfo, Bound, Loop, Nest, Obligation, Param, Statement
 from .scope import Symbol, visible_at_loops
-from .source import Token, match_close, statement_end
+from .source import Token, match_close, statement_end, tokenize
 
 # Pure functions of math.h (C11 7.12) that looptile treats as side-effect free.
 # Common practice: errno updates on domain errors are ignored (said in the guard comment).
@@ -695,9 +695,10 @@ class _Body:
             except NotAffine as exc:
                 raise ctx.refuse(f"a subscript of '{name}' is not an affine function of the loop iterators and "
                                  f"parameters; {exc.reason}", exc.node or s) from None
+            line = s.coord.line if s.coord else ctx.site.line
+            col = _column_on_line(ctx.tu, line, node) or 1
             for o in obl:
-                ctx.obligations.append(Obligation(o, tuple(ctx.iterators), s.coord.line if s.coord else 0, 1,
-                                                  f"a subscript of '{name}'"))
+                ctx.obligations.append(Obligation(o, tuple(ctx.iterators), line, col, f"a subscript of '{name}'"))
             affs.append(a)
         if info.local:
             affs = [Affine.symbol(i) for i in ctx.iterators[: info.ndims - len(affs)]] + affs
@@ -789,6 +790,7 @@ def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] 
     ctx.locals_.append({})
     body.stmt(node.stmt, ())
     _check_writes(ctx)
+    _check_altered(ctx, perfect[0])
     outer = perfect[0]
     innermost = perfect[-1]
     comments, pps = [], []
@@ -832,6 +834,28 @@ def _subscript_macros(tu: TranslationUnit, innermost: Loop) -> list[tuple[str, s
             if body_text.lstrip("-").isdigit() and (t.text, body_text) not in out:
                 out.append((t.text, body_text))
     return out
+
+
+def _check_altered(ctx: _Ctx, outer: Loop) -> None:
+    """Refuse when the header flags changed the code of this function or a declaration it uses."""
+    tu = ctx.tu
+    if not tu.altered:
+        return
+    starts = sorted(f.node.coord.line for f in tu.functions)
+    func = next(f for f in tu.functions if f.name == ctx.site.function)
+    first = func.node.coord.line
+    later = [ln for ln in starts if ln > first]
+    last = later[0] - 1 if later else len(tu.source.line_starts)
+    used = set(ctx.arrays) | set(ctx.params) | {a.name for a in ctx.arrays.values()}
+    for line in sorted(tu.altered):
+        inside = first <= line <= last
+        names = {t.text for t in tokenize(tu.source.line_text(line)) if t.kind == "id"}
+        if inside or (line < first and names & used):
+            raise Refusal(
+                "cannot analyse this nest faithfully; the flags that make the system headers parseable "
+                "(for example -U__GNUC__) change the code here (a __GNUC__ branch, an attribute, or a macro "
+                "such as assert that expands differently)",
+                path=tu.source.path, line=line, column=1, source_line=tu.source.line_text(line))
 
 
 def _check_writes(ctx: _Ctx) -> None:

@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 from pycparser import c_ast, c_parser
 
-from .errors import InputError, Refusal
+from .errors import InputError
 from .flags import CompileFlags
 from .source import SourceFile, Token, code_tokens, tokenize
 from . import toolchain
@@ -50,6 +50,7 @@ class TranslationUnit:
     all_tokens: list[Token]  # with comments and preprocessor lines
     functions: list[FunctionInfo]
     identifiers: set[str]
+    altered: frozenset[int] = frozenset()  # lines the header flags change (see altered_lines)
 
     def loops(self) -> list[LoopSite]:
         return [s for f in self.functions for s in f.loops]
@@ -79,35 +80,28 @@ def _normalise(text: str) -> str:
     return " ".join(t.text for t in tokenize(text))
 
 
-def check_header_flags_harmless(src: SourceFile, flags: CompileFlags, parsed_text: str) -> None:
-    """Refuse when the header flags change the user's own code (e.g. its #ifdef __GNUC__)."""
+def altered_lines(src: SourceFile, flags: CompileFlags, parsed_text: str) -> frozenset[int]:
+    """Lines of the user's file whose preprocessed tokens change because of the header flags.
+
+    For example its own ``#ifdef __GNUC__`` branches, attributes, or macros from the
+    system headers such as ``assert`` that expand differently.  A nest is refused when
+    such a line can affect it (see ``extract.build_nest``)."""
     plain = toolchain.preprocess(src.path, flags, parseable=False).text
     main = os.path.abspath(src.path)
-    a = [(ln, _normalise(t)) for ln, t in main_file_lines(plain, main)]
-    b = [(ln, _normalise(t)) for ln, t in main_file_lines(parsed_text, main)]
-    a = [x for x in a if x[1]]
-    b = [x for x in b if x[1]]
-    for (la, ta), (lb, tb) in zip(a, b):
-        if (la, ta) != (lb, tb):
-            line = min(la, lb)
-            raise Refusal(
-                "cannot analyse this file faithfully; the flags that make the system headers "
-                "parseable (for example -U__GNUC__) change this file's own code here "
-                "(a __GNUC__ branch, an attribute or an asm statement)",
-                path=src.path, line=line, column=1, source_line=src.line_text(line),
-            )
-    if len(a) != len(b):
-        line = (a[len(b)][0] if len(a) > len(b) else b[len(a)][0])
-        raise Refusal(
-            "cannot analyse this file faithfully; the flags that make the system headers "
-            "parseable change this file's own code from here on",
-            path=src.path, line=line, column=1,
-        )
+
+    def by_line(text: str) -> dict[int, str]:
+        out: dict[int, list[str]] = {}
+        for ln, t in main_file_lines(text, main):
+            out.setdefault(ln, []).append(_normalise(t))
+        return {ln: " ".join(x for x in parts if x) for ln, parts in out.items()}
+
+    a, b = by_line(plain), by_line(parsed_text)
+    return frozenset(ln for ln in set(a) | set(b) if a.get(ln, "") != b.get(ln, ""))
 
 
 def load(src: SourceFile, flags: CompileFlags) -> TranslationUnit:
     pre = toolchain.preprocess(src.path, flags)
-    check_header_flags_harmless(src, flags, pre.text)
+    altered = altered_lines(src, flags, pre.text)
     main = os.path.abspath(src.path)
     try:
         ast = c_parser.CParser().parse(pre.text, main)
@@ -127,7 +121,7 @@ def load(src: SourceFile, flags: CompileFlags) -> TranslationUnit:
     functions = _functions(ast, main, tokens, src)
     idents = {t.text for t in all_tokens if t.kind == "id"}
     idents |= set(re.findall(r"[A-Za-z_]\w*", pre.text))
-    return TranslationUnit(src, flags, ast, macros, tokens, all_tokens, functions, idents)
+    return TranslationUnit(src, flags, ast, macros, tokens, all_tokens, functions, idents, altered)
 
 
 class _ForCollector(c_ast.NodeVisitor):
