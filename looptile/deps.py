@@ -129,10 +129,23 @@ class NestAnalysis:
             parts.append(f"exists (e_{x} : {x} = {lo} {sign} {lp.step}e_{x})")
         return " and ".join(parts)
 
-    def chain_set(self, name: str, iterators: tuple[str, ...]) -> isl.Set:
-        dims = ", ".join(_isl_name(i) for i in iterators)
-        cons = " and ".join(self.loop_constraints(self.loops[i]) for i in iterators) or "true"
-        return self._set(f"{{ {name}[{dims}] : {cons} }}").intersect_params(self.context)
+    def chain_set(self, name: str, iterators: tuple[str, ...], extra: str = "") -> isl.Set:
+        """The values the ``iterators`` take together in the nest (loops their bounds
+        refer to are included and projected out)."""
+        dims = list(iterators)
+        k = 0
+        while k < len(dims):
+            lp = self.loops[dims[k]]
+            for ref in sorted((lp.start.value.names() | lp.limit.value.names()) & set(self.loops)):
+                if ref not in dims:
+                    dims.append(ref)
+            k += 1
+        cons = " and ".join([self.loop_constraints(self.loops[i]) for i in dims] + ([extra] if extra else [])) \
+            or "true"
+        s = self._set(f"{{ {name}[{', '.join(_isl_name(i) for i in dims)}] : {cons} }}").intersect_params(self.context)
+        if len(dims) > len(iterators):
+            s = s.project_out(isl.dim_type.set, len(iterators), len(dims) - len(iterators))
+        return s
 
     def _domain(self, s: Statement) -> isl.Set:
         return self.chain_set(s.name, s.loops)
@@ -310,10 +323,8 @@ class NestAnalysis:
 
     # -- other questions
     def always_nonnegative(self, expr: Affine, loops: tuple[str, ...]) -> bool:
-        dom = self.chain_set("X", loops)
-        neg = dom.intersect(isl.Set(self._prefix() + f"{{ X[{', '.join(_isl_name(i) for i in loops)}] : "
-                                     f"{self._r(expr)} < 0 }}", context=_ctx))
-        return neg.is_empty()
+        """Is ``expr >= 0`` wherever the ``loops`` have values in the nest?"""
+        return self.chain_set("X", loops, f"{self._r(expr)} < 0").is_empty()
 
     def failing_obligations(self) -> list[Obligation]:
         return [o for o in self.nest.obligations if not self.always_nonnegative(o.expr, o.loops)]
@@ -415,8 +426,16 @@ def band_hull(analysis: NestAnalysis, iterator: str, kept: tuple[str, ...]) -> t
 
     Raises BoundsNotAffine when a bound is not a single affine expression.
     """
+    lo, hi, _ = _projected_bounds(analysis, iterator, kept)
+    return _single_affine(lo), _single_affine(hi)
+
+
+def _projected_bounds(analysis: NestAnalysis, iterator: str,
+                      kept: tuple[str, ...]) -> tuple[isl.PwAff, isl.PwAff, isl.Set]:
+    """Exact smallest and largest value of ``iterator`` over the perfect loops' domain,
+    the ``kept`` iterators being given values and the other iterators projected out."""
     nest = analysis.nest
-    its = nest.iterators[: nest.iterators.index(iterator) + 1]
+    its = nest.iterators
     others = [i for i in its if i != iterator and i not in kept]
     cons = " and ".join(analysis.loop_constraints(analysis.loops[i]) for i in its)
     s = _params_set(analysis, list(kept), f"{{ X[{', '.join(_isl_name(i) for i in [iterator] + others)}] : {cons} }}")
@@ -424,8 +443,35 @@ def band_hull(analysis: NestAnalysis, iterator: str, kept: tuple[str, ...]) -> t
     if others:
         s = s.project_out(isl.dim_type.set, 1, len(others))
     nonempty = s.params()
-    lo, hi = s.dim_min(0).gist(nonempty), s.dim_max(0).gist(nonempty)
-    return _single_affine(lo), _single_affine(hi)
+    return s.dim_min(0).gist(nonempty), s.dim_max(0).gist(nonempty), nonempty
+
+
+def scan_bounds(analysis: NestAnalysis, iterator: str,
+                kept: tuple[str, ...]) -> tuple[tuple[Affine, ...], tuple[Affine, ...]]:
+    """Bounds of a loop moved across loops it is not rectangular with:
+    max(lowers) <= iterator <= min(uppers), given the ``kept`` iterators.
+
+    Raises BoundsNotAffine when the exact bounds are not such a max / min."""
+    lo, hi, nonempty = _projected_bounds(analysis, iterator, kept)
+    return _as_extremum(lo, nonempty, "max"), _as_extremum(hi, nonempty, "min")
+
+
+def _as_extremum(pa: isl.PwAff, where: isl.Set, how: str) -> tuple[Affine, ...]:
+    affs: list[isl.Aff] = []
+    pa.foreach_piece(lambda _s, aff: affs.append(aff))
+    distinct: list[isl.Aff] = []
+    for a in affs:
+        if not any(a.plain_is_equal(b) for b in distinct):
+            distinct.append(a)
+    combined = None
+    for a in distinct:
+        p = isl.PwAff.from_aff(a)
+        combined = p if combined is None else (combined.max(p) if how == "max" else combined.min(p))
+    if combined is None or not pa.ne_set(combined).intersect(where).is_empty():
+        raise BoundsNotAffine(f"the bound is not a {how} of affine expressions")
+    space = pa.get_space()
+    names = [space.get_dim_name(isl.dim_type.param, k) for k in range(space.dim(isl.dim_type.param))]
+    return tuple(_aff_to_affine(a, names) for a in distinct)
 
 
 def _lift(ctx_set: isl.Set, target: isl.Set) -> isl.Set:
@@ -438,17 +484,19 @@ def full_tile_constraints(analysis: NestAnalysis, boxed: list[tuple[str, str, in
     """Conditions on tile origins for the whole tile to lie in the domain.
 
     ``boxed``: (iterator, tile iterator name, span) of the point loops inside the test;
-    ``kept``: iterators with a value at the test; ``known``: facts ``a >= 0`` already
-    tested or true there (they are left out of the answer).  Returns ``(a, is_equality)``
+    ``kept``: iterators with a value at the test; ``known``: facts ``a >= 0`` that hold
+    wherever the test is evaluated or are tested with it (they are left out of the answer;
+    a fact that does not hold there would make the answer wrong).  Returns ``(a, is_equality)``
     meaning ``a >= 0`` (or ``a == 0``); raises BoundsNotAffine for a non-convex answer.
     """
     nest = analysis.nest
     band = [b for b, _, _ in boxed]
-    last = max(nest.iterators.index(b) for b in band)
-    its = nest.iterators[: last + 1]
+    its = nest.iterators
     others = [i for i in its if i not in band and i not in kept]
     tiles = [t for _, t, _ in boxed]
     extra = list(kept) + tiles
+    present = {_from_isl(p) for p in analysis.params} | set(extra)
+    extra += sorted({n for k in known for n in k.names()} - present)
     cons = " and ".join(analysis.loop_constraints(analysis.loops[i]) for i in its)
     dims = band + others
     dom = _params_set(analysis, extra, f"{{ X[{', '.join(_isl_name(i) for i in dims)}] : {cons} }}")
@@ -461,8 +509,7 @@ def full_tile_constraints(analysis: NestAnalysis, boxed: list[tuple[str, str, in
         box_parts.append(f"{tt} <= {x} <= {tt} + {span - 1}" if lp.direction > 0 else f"{tt} - {span - 1} <= {x} <= {tt}")
     box = _params_set(analysis, extra, f"{{ X[{', '.join(_isl_name(i) for i in band)}] : {' and '.join(box_parts)} }}")
     full = box.subtract(dom).params().complement()
-    facts = [f"{k.render(_isl_name)} >= 0" for k in known] + \
-        [analysis.loop_constraints(analysis.loops[i]) for i in kept if i in analysis.loops]
+    facts = [f"{k.render(_isl_name)} >= 0" for k in known]
     known_s = _params_set(analysis, extra, "{ : " + (" and ".join(facts) or "true") + " }")
     full = full.gist(known_s.intersect(_lift(analysis.context, known_s)))
     full = full.coalesce()

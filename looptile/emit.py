@@ -126,7 +126,7 @@ def split_point(nest: Nest, plan: TilePlan) -> SplitPoint:
         tile = next(t for t in slots if t.kind == "tile" and t.iterator == s.iterator)
         lp = nest.loop(s.iterator)
         uses = (lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators)
-        if tile.hull is None and uses <= set(kept):
+        if tile.hull is None and s.scan is None and uses <= set(kept):
             rect.append(s.iterator)
     return SplitPoint(kept, boxed, tuple(rect))
 
@@ -210,6 +210,8 @@ class NestEmitter:
     def point_header(self, s: Slot, tile: str, full: bool) -> str:
         lp = self.loops[s.iterator]
         span = lp.step * (s.size or 1)
+        if s.scan is not None and not full:
+            return self.scan_header(s, tile, lp)
         if full:
             return render("point_loop_full.c.j2", decl=self._decl(lp, False), name=s.name, tile=tile,
                           op="<" if lp.direction > 0 else ">", sign="+" if lp.direction > 0 else "-", span=span,
@@ -224,7 +226,32 @@ class NestEmitter:
 
     def plain_header(self, s: Slot) -> str:
         lp = self.loops[s.iterator]
+        if s.scan is not None:
+            return self.scan_header(s, None, lp)
         return self.src.text[lp.for_offset:lp.header_end]
+
+    def scan_header(self, s: Slot, tile: str | None, lp: Loop) -> str:
+        """A loop over max(lowers) .. min(uppers) (reversed for a down-counting loop),
+        clamped to its tile when it is a point loop."""
+        assert s.scan is not None
+        lowers, uppers = s.scan
+        up = lp.direction > 0
+        near = [c_affine(a, self.nest) for a in (lowers if up else uppers)]
+        if tile is not None:
+            near = [tile] + near
+        start = near[0]
+        for other in near[1:]:
+            start = f"({start} > {paren(other)} ? {start} : {paren(other)})" if up else \
+                f"({start} < {paren(other)} ? {start} : {paren(other)})"
+        if up:
+            conds = [f"{s.name} < {paren(c_affine(u + Affine(const=1), self.nest))}" for u in uppers]
+        else:
+            conds = [f"{s.name} >= {paren(c_affine(lo_, self.nest))}" for lo_ in lowers]
+        if tile is not None:
+            conds.append(f"{s.name} - {tile} < {lp.step * (s.size or 1)}" if up
+                         else f"{tile} - {s.name} < {lp.step * (s.size or 1)}")
+        decl = self._decl(lp, False)
+        return f"for ({decl}{s.name} = {start}; {' && '.join(conds)}; {self._step_text(lp)})"
 
     def full_test(self, slots: list[Slot], tiles: dict[str, str]) -> str:
         parts = []

@@ -162,6 +162,42 @@ def _hull_fn(analysis: NestAnalysis):
     return hull
 
 
+def _scan_fn(analysis: NestAnalysis):
+    def scan(iterator: str, kept: tuple[str, ...]):
+        try:
+            return deps.scan_bounds(analysis, iterator, kept)
+        except deps.BoundsNotAffine as exc:
+            raise ValueError(str(exc)) from None
+    return scan
+
+
+def _loop_facts(nest: Nest, plan: TilePlan, kept: tuple[str, ...]) -> list[Affine]:
+    """``a >= 0`` facts that the emitted loop headers guarantee inside the loops outside the
+    whole-tile test: tile iterators within their loops' ranges, and the values of the
+    point and untouched loops there."""
+    facts: list[Affine] = []
+    for s in plan.slots:
+        lp = nest.loop(s.iterator)
+        x = Affine.symbol(s.name)
+        if s.kind == "tile":
+            if s.hull is not None:
+                facts += [x - s.hull[0], s.hull[1] - x]
+                continue
+            if (lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators):
+                continue
+        elif s.iterator not in kept:
+            continue
+        elif s.scan is not None:
+            facts += [x - lo for lo in s.scan[0]] + [hi - x for hi in s.scan[1]]
+            continue
+        excl = Affine(const=0 if lp.inclusive else 1)
+        if lp.direction > 0:
+            facts += [x - lp.start.value, lp.limit.value - x - excl]
+        else:
+            facts += [lp.start.value - x, x - lp.limit.value - excl]
+    return facts
+
+
 def emit_facts(nest: Nest, analysis: NestAnalysis, plan: TilePlan, c89: bool) -> EmitFacts:
     """Facts the emitted code relies on, established with isl."""
     wide = set()
@@ -189,18 +225,7 @@ def emit_facts(nest: Nest, analysis: NestAnalysis, plan: TilePlan, c89: bool) ->
                 tt = Affine.symbol(tiles[s.iterator])
                 dist = lp.limit.value - tt if lp.direction > 0 else tt - lp.limit.value
                 known.append(dist - Affine(const=full_form(lp, s.size or 1)))
-        for s in plan.slots:  # where the tile loops run
-            if s.kind != "tile":
-                continue
-            tt, lp = Affine.symbol(s.name), nest.loop(s.iterator)
-            if s.hull is not None:
-                known += [tt - s.hull[0], s.hull[1] - tt]
-            elif not (lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators):
-                excl = Affine(const=0 if lp.inclusive else 1)
-                if lp.direction > 0:
-                    known += [tt - lp.start.value, lp.limit.value - tt - excl]
-                else:
-                    known += [lp.start.value - tt, tt - lp.limit.value - excl]
+        known += _loop_facts(nest, plan, sp.kept)
         boxed = [(s.iterator, tiles[s.iterator], nest.loop(s.iterator).step * (s.size or 1)) for s in sp.boxed]
         try:
             extra = tuple(deps.full_tile_constraints(analysis, boxed, sp.kept, known))
@@ -241,7 +266,7 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
     src = tu.source
     site = select(tu, sel)
     nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions)
-    plan = plan_tiling(nest, req, tu.identifiers, _hull_fn(analysis))
+    plan = plan_tiling(nest, req, tu.identifiers, _hull_fn(analysis), _scan_fn(analysis))
     _check_request_side(tu, nest, plan, opts)
     legality: Legality = analysis.check(list(plan.schedule))
     if not legality.legal:

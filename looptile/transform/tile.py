@@ -29,6 +29,9 @@ class Slot:
     # given the iterators defined outside the tile loop), computed by the analysis.
     hull: tuple[Affine, Affine] | None = None
     defined: tuple[str, ...] = ()  # iterators with a value where this loop starts
+    # Point and untouched loops moved across loops they are not rectangular with run
+    # over max(lowers) .. min(uppers), computed by the analysis (else: their own bounds).
+    scan: tuple[tuple[Affine, ...], tuple[Affine, ...]] | None = None
 
 
 @dataclass(frozen=True)
@@ -120,9 +123,11 @@ def _source_loop_names(nest: Nest) -> set[str]:
 
 
 HullFn = Callable[[str, tuple[str, ...]], tuple[Affine, Affine]]
+ScanFn = Callable[[str, tuple[str, ...]], tuple[tuple[Affine, ...], tuple[Affine, ...]]]
 
 
-def plan_tiling(nest: Nest, req: TileRequest, taken: set[str], hull: HullFn | None = None) -> TilePlan:
+def plan_tiling(nest: Nest, req: TileRequest, taken: set[str], hull: HullFn | None = None,
+                scan: ScanFn | None = None) -> TilePlan:
     """The new loop order for ``req``; usage errors for impossible orders."""
     if not req.sizes and not req.order:
         raise UsageError("give --sizes (tiling) or --order (a permutation), or both")
@@ -159,20 +164,43 @@ def plan_tiling(nest: Nest, req: TileRequest, taken: set[str], hull: HullFn | No
     for kind, it in order:
         slot = Slot(kind, it, names[it] if kind == "tile" else it, dict(zip(band, sizes)).get(it),
                     defined=tuple(defined))
-        if kind == "tile" and _uses_undefined(nest, it, defined):
+        if kind == "tile" and _needs_projection(nest, it, defined):
             slot = _hull_slot(nest, slot, hull)
+        if kind != "tile" and _needs_projection(nest, it, defined):
+            slot = _scan_slot(nest, slot, scan)
         if kind != "tile":
             defined.append(it)
         slots.append(slot)
     slots = tuple(slots)
-    _check_bounds_order(nest, slots)
     schedule = tuple(_dim(nest, s) for s in slots)
     return TilePlan(band, sizes, slots, req.remainder, schedule)
 
 
-def _uses_undefined(nest: Nest, it: str, defined: list[str]) -> bool:
+def _refs(nest: Nest, it: str) -> set[str]:
     lp = nest.loop(it)
-    return bool((lp.start.value.names() | lp.limit.value.names()) & (set(nest.iterators) - set(defined)))
+    return (lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators)
+
+
+def _needs_projection(nest: Nest, it: str, defined: list[str]) -> bool:
+    """Its own bounds do not describe the loop here: they use iterators without a value yet,
+    or a loop already placed outside it has bounds that use this loop's iterator."""
+    return bool(_refs(nest, it) - set(defined)) or any(it in _refs(nest, d) for d in defined)
+
+
+def _scan_slot(nest: Nest, slot: Slot, scan: ScanFn | None) -> Slot:
+    lp = nest.loop(slot.iterator)
+    where = dict(path=nest.path, line=lp.line, column=lp.col)
+    if scan is None or lp.step != 1:
+        raise Refusal(f"moving loop '{slot.iterator}' across the loops its bounds depend on needs step 1", **where)
+    try:
+        bounds = scan(slot.iterator, slot.defined)
+    except ValueError as exc:
+        raise Refusal(f"after the reordering, the bounds of loop '{slot.iterator}' are not a max/min of affine "
+                      f"expressions ({exc})", **where) from None
+    if lp.ctype.is_unsigned and any(c < 0 or x.const < 0 for part in bounds for x in part for _, c in x.terms):
+        raise Refusal(f"after the reordering, the bounds of the unsigned loop '{slot.iterator}' could wrap around",
+                      **where)
+    return Slot(slot.kind, slot.iterator, slot.name, slot.size, slot.hull, slot.defined, bounds)
 
 
 def _hull_slot(nest: Nest, slot: Slot, hull: HullFn | None) -> Slot:
@@ -204,25 +232,6 @@ def _dim(nest: Nest, slot: Slot) -> ScheduleDim:
     if slot.hull is not None:
         origin = slot.hull[0] if lp.direction > 0 else slot.hull[1]
     return ScheduleDim(slot.iterator, block=lp.step * (slot.size or 1), origin=origin)
-
-
-def _check_bounds_order(nest: Nest, slots: tuple[Slot, ...]) -> None:
-    """Loops whose bounds use other iterators of the nest must stay inside those loops' point loops."""
-    its = set(nest.iterators)
-    seen: set[str] = set()
-    for s in slots:
-        lp = nest.loop(s.iterator)
-        uses = (lp.start.value.names() | lp.limit.value.names()) & its
-        if s.kind == "tile" and uses:
-            continue  # tile loops of non-rectangular loops take hull bounds (emit.py)
-        inner = uses - seen
-        if s.kind != "tile" and inner:
-            raise Refusal(
-                f"the bounds of loop '{s.iterator}' use {', '.join(sorted(inner))}, which the requested order "
-                f"places inside it; reordering non-rectangular loops is not supported yet",
-                path=nest.path, line=lp.line, column=lp.col)
-        if s.kind != "tile":
-            seen.add(s.iterator)
 
 
 def origin_of(nest: Nest, iterator: str) -> Affine:
