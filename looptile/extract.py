@@ -6,6 +6,7 @@ Everything outside the model is a ``Refusal`` that names the construct at
 """
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 
 from pycparser import c_ast
@@ -808,6 +809,7 @@ def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] 
     if pps:
         raise ctx.refuse("a preprocessor line between the loop headers would be detached by the rewrite",
                          offset=pps[0].start)
+    _check_pragma_on(ctx, outer)
     macros = _subscript_macros(tu, innermost)
     return Nest(
         path=tu.source.path, function=site.function, line=outer.line, col=outer.col,
@@ -834,6 +836,21 @@ def _subscript_macros(tu: TranslationUnit, innermost: Loop) -> list[tuple[str, s
             if body_text.lstrip("-").isdigit() and (t.text, body_text) not in out:
                 out.append((t.text, body_text))
     return out
+
+
+def _check_pragma_on(ctx: _Ctx, outer: Loop) -> None:
+    """A pragma right before the nest applies to its outermost loop; a rewrite would move it."""
+    prev = None
+    for t in ctx.tu.all_tokens:
+        if t.start >= outer.for_offset:
+            break
+        if t.kind != "comment":
+            prev = t
+    if prev is not None and prev.kind == "pp" and re.match(r"#\s*pragma\b", prev.text):
+        name = " ".join(prev.text.split())
+        raise ctx.refuse(f"'{name}' applies to this loop nest; the rewrite would attach it to a different loop, "
+                         "so looptile leaves the nest alone (remove the pragma, tile, then add it back where it "
+                         "belongs)", offset=prev.start)
 
 
 def _check_altered(ctx: _Ctx, outer: Loop) -> None:

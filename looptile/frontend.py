@@ -12,10 +12,10 @@ from dataclasses import dataclass, field
 
 from pycparser import c_ast, c_parser
 
+from . import toolchain
 from .errors import InputError
 from .flags import CompileFlags
 from .source import SourceFile, Token, code_tokens, tokenize
-from . import toolchain
 
 _MARKER = re.compile(r'^#\s*(?:line\s+)?(\d+)\s+"((?:[^"\\]|\\.)*)"')
 

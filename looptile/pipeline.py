@@ -248,6 +248,9 @@ def guard_text(nest: Nest, plan: TilePlan, analysis: NestAnalysis, opts: TileOpt
         assumes.append(f"the arrays {', '.join(shared)} do not overlap")
     elif shared:
         assumes.append(f"no other name aliases {shared[0]}")
+    opaque = [p.text for p in nest.params if p.kind == "opaque" and re.search(r"->|\.|\*|\[", p.text)]
+    if opaque:
+        assumes.append(f"the nest does not change {', '.join(opaque)}")
     assumes += [f"{a} (asserted by the user)" for a in opts.assumptions]
     assumes += [f"{name} == {value} (checked by #if)" for name, value in nest.macros_used]
     return guard_comment(plan.describe(), constrained, "; ".join(assumes) or "nothing", opts.command)
