@@ -147,8 +147,8 @@ def _command_text(path: str, nest: str, sizes: str | None, order: str | None, re
 @click.option("--nest", "nest", required=True, metavar="SEL", help="L<line>, FUNC or FUNC:K.")
 @click.option("--sizes", metavar="SPEC", help="Tile sizes: i=32,j=32 or 32,32 (outermost loops).")
 @click.option("--order", metavar="LIST", help="New loop order, e.g. ii,kk,jj,i,k,j (ii or i.1 = tile loop of i).")
-@click.option("--remainder", type=click.Choice(["split", "clamp"]), default="split", show_default=True,
-              help="split: fast path for whole tiles; clamp: min-style bounds only.")
+@click.option("--remainder", type=click.Choice(["split", "clamp"]), default=None,
+              help="split (default): fast path for whole tiles; clamp: min-style bounds only.")
 @click.option("--diff", "as_diff", is_flag=True, help="Print a unified diff instead of the file.")
 @click.option("-o", "--output", metavar="OUT", help="Write the result to OUT.")
 @click.option("--in-place", is_flag=True, help="Replace FILE (atomically, mode kept).")
@@ -160,9 +160,11 @@ def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: 
     """Strip-mine a band of loops and move the tile loops outward, if the analysis proves it legal."""
     if sum([as_diff, bool(output), in_place]) > 1:
         raise UsageError("choose one of --diff, -o OUT and --in-place")
-    req = TileRequest(_parse_sizes(sizes), tuple(x.strip() for x in order.split(",")) if order else None, remainder)
+    req = TileRequest(_parse_sizes(sizes), tuple(x.strip() for x in order.split(",")) if order else None,
+                      remainder or "split")
     opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), force,
-                                _command_text(file, nest, sizes, order, remainder, kw))
+                                _command_text(file, nest, sizes, order, remainder or "split", kw),
+                                split_fallback=remainder is None)
     tu = pipeline.load(file, _flags(file, kw))
     outcome = pipeline.tile(tu, nest, req, opts)
     for note in outcome.notes:

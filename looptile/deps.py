@@ -518,3 +518,67 @@ def full_tile_constraints(analysis: NestAnalysis, boxed: list[tuple[str, str, in
     if len(bsets) != 1 or bsets[0].dim(isl.dim_type.div):
         raise BoundsNotAffine("the whole-tile test is not one conjunction")
     return _constraint_affines(bsets[0])
+
+
+def _type_range(bits: int, signed: bool) -> tuple[int, int]:
+    return (-(2 ** (bits - 1)), 2 ** (bits - 1) - 1) if signed else (0, 2 ** bits - 1)
+
+
+def overflow_guard(analysis: NestAnalysis, tile_of: dict[str, str],
+                   exprs: list[tuple[Affine, int, bool]]) -> list[tuple[str, str, int]]:
+    """Parameter bounds under which no printed expression overflows its C type.
+
+    ``exprs``: (partial sum as C evaluates it, bits, signed).  Variables are the nest's
+    iterators and the tile iterators (``tile_of``: tile name -> iterator); each is taken
+    anywhere in its loop's range (a safe over-approximation).  Returns [] when every
+    expression is safe for all parameter values of their types, else bounds
+    ``(param, "<=" or ">=", value)`` to test before running the rewrite.  Raises
+    BoundsNotAffine when the safe parameters are not a box.
+    """
+    nest = analysis.nest
+    if not exprs:
+        return []
+    names = list(nest.iterators) + list(tile_of)
+    its = nest.iterators
+    cons = " and ".join(analysis.loop_constraints(analysis.loops[i]) for i in its)
+    dom = analysis._set(f"{{ X[{', '.join(_isl_name(i) for i in its)}] : {cons} }}")
+    ranges = None
+    for v in names:
+        it = tile_of.get(v, v)
+        k = its.index(it)
+        proj = dom.project_out(isl.dim_type.set, k + 1, len(its) - k - 1).project_out(isl.dim_type.set, 0, k)
+        proj = proj.reset_tuple_id()
+        ranges = proj if ranges is None else ranges.flat_product(proj)
+    assert ranges is not None
+    ranges = ranges.reset_tuple_id()
+    var_names = [_isl_name(v) for v in names]
+    box_parts = []
+    for p in nest.params:
+        lo, hi = _type_range(p.ctype.bits if p.ctype.is_int else 32, p.ctype.signed if p.ctype.is_int else True)
+        box_parts.append(f"{lo} <= {_isl_name(p.name)} <= {hi}")
+    box = analysis._set("{ : " + (" and ".join(box_parts) or "true") + " }")
+    bad = None
+    for expr, bits, signed in exprs:
+        lo, hi = _type_range(bits, signed)
+        e = expr.render(_isl_name)
+        probe = analysis._set(f"{{ [{', '.join(var_names)}] : {e} > {hi} or {e} < {lo} }}")
+        hit = ranges.intersect(probe).params().intersect(box)
+        bad = hit if bad is None else bad.union(hit)
+    if bad is None or bad.is_empty():
+        return []
+    safe = box.subtract(bad).coalesce().gist(box)
+    bsets: list[isl.BasicSet] = []
+    safe.foreach_basic_set(bsets.append)
+    if len(bsets) != 1:
+        raise BoundsNotAffine("the parameter values for which the rewrite cannot overflow are not a box")
+    out = []
+    for a, eq in _constraint_affines(bsets[0]):
+        if len(a.terms) != 1 or eq:
+            raise BoundsNotAffine("the parameter values for which the rewrite cannot overflow are not a box")
+        (name, c), = a.terms
+        # c*name + k >= 0
+        if c > 0:
+            out.append((name, ">=", -(a.const // c)))
+        else:
+            out.append((name, "<=", a.const // (-c)))
+    return out

@@ -93,18 +93,39 @@ def _plus(a: str, k: int) -> str:
     return f"{a} + {k}" if k >= 0 else f"{a} - {-k}"
 
 
-def c_affine(a: Affine, nest: Nest) -> str:
-    """An affine expression in C, parameters in their source spelling."""
+def c_affine(a: Affine, nest: Nest, keep_order: bool = False) -> str:
+    """An affine expression in C, parameters in their source spelling (terms in the order
+    given when ``keep_order``, else sorted by name)."""
     spell = {p.name: (p.text if p.kind != "opaque" else paren(p.text)) for p in nest.params}
+    if keep_order:
+        a = _Ordered(a.terms, a.const)
     return a.render(lambda n: spell.get(n, n)).replace("*", " * ")
 
 
-def c_condition(a: Affine, eq: bool, nest: Nest) -> str:
-    """``a >= 0`` (or ``== 0``) as ``positive terms >= negative terms``, without any subtraction
-    (so it also means the same for unsigned operands)."""
-    pos = Affine(tuple((n, c) for n, c in a.terms if c > 0), max(a.const, 0))
-    neg = Affine(tuple((n, -c) for n, c in a.terms if c < 0), max(-a.const, 0))
-    return f"{c_affine(pos, nest)} {'==' if eq else '>='} {c_affine(neg, nest)}"
+class _Ordered(Affine):
+    """An Affine whose terms keep their given order (for printing only)."""
+
+
+def condition_sides(a: Affine, signed: bool) -> tuple[list[tuple[str, int]], list[tuple[str, int]], int, int]:
+    """How ``a >= 0`` is printed: (left terms, right terms, left constant, right constant).
+
+    Signed: ``x - y >= c`` (differences of values of one range rarely overflow);
+    unsigned: ``x + c1 >= y + c2``, without any subtraction, which would wrap."""
+    pos = [(n, c) for n, c in a.terms if c > 0]
+    neg = [(n, -c) for n, c in a.terms if c < 0]
+    if signed:
+        return pos + [(n, -c) for n, c in neg], [], 0, -a.const
+    return pos, neg, max(a.const, 0), max(-a.const, 0)
+
+
+def _terms_text(terms: list[tuple[str, int]], const: int, nest: Nest) -> str:
+    return c_affine(Affine(tuple(terms), const), nest, keep_order=True)
+
+
+def c_condition(a: Affine, eq: bool, nest: Nest, signed: bool = True) -> str:
+    left, right, lc, rc = condition_sides(a, signed)
+    op = "==" if eq else ">="
+    return f"{_terms_text(left, lc, nest)} {op} {_terms_text(right, rc, nest)}"
 
 
 @dataclass(frozen=True)
@@ -260,7 +281,8 @@ class NestEmitter:
                 lp = self.loops[s.iterator]
                 if s.iterator in split_point(self.nest, self.plan).rect:
                     parts.append(f"{self._dist(lp, tiles[s.iterator])} >= {self._full(lp, s.size or 1)}")
-        parts += [c_condition(a, eq, self.nest) for a, eq in self.facts.full_extra]
+        signed = self.loops[self.plan.band[0]].ctype.signed
+        parts += [c_condition(a, eq, self.nest, signed) for a, eq in self.facts.full_extra]
         return " && ".join(parts)
 
     # -- structure
@@ -375,6 +397,18 @@ class NestEmitter:
         out.append(Line(ind, "}"))
         return out
 
+    def _shift(self, lines: list[Line]) -> list[Line]:
+        return [Line(ln.indent + self.unit if ln.indent.startswith(self.base) else ln.indent, ln.text)
+                for ln in lines]
+
+    def versioned(self, lines: list[Line], checks: list[str]) -> list[Line]:
+        """``if (checks) { rewrite } else { original nest }``."""
+        text = self.src.text[self.nest.start:self.nest.end].replace("\r\n", "\n").split("\n")
+        original = [Line(self.base, text[0])] + [
+            Line(self.base, ln[len(self.base):]) if ln.startswith(self.base) else Line("", ln) for ln in text[1:]]
+        return ([Line(self.base, f"if ({' && '.join(checks)}) {{")] + self._shift(lines) +
+                [Line(self.base, "} else {")] + self._shift(original) + [Line(self.base, "}")])
+
     def c89_wrap(self, lines: list[Line]) -> list[Line]:
         decls = [f"{self.loops[s.iterator].ctype.spelling} {s.name};" for s in self.plan.slots if s.kind == "tile"]
         if not self.facts.c89 or not decls or len(self.plan.band) == 1 and self.plan.remainder == "split":
@@ -385,12 +419,18 @@ class NestEmitter:
                [Line(self.base, "}")]
 
 
-def emit_nest(src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, guard: str) -> str:
-    """The replacement text for nest.start..nest.end (first line starts at the for's column)."""
+def emit_nest(src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, guard: str,
+              checks: list[str] | None = None) -> str:
+    """The replacement text for nest.start..nest.end (first line starts at the for's column).
+
+    With ``checks``, the rewrite runs only when they hold and the original nest otherwise."""
     em = NestEmitter(src, nest, plan, facts)
     lines = [Line(em.base, ln) for ln in guard.split("\n")]
     lines += [Line(em.base, c.replace("\r\n", "\n")) for c in nest.header_comments]
-    lines += em.c89_wrap(em.nest_lines())
+    body = em.c89_wrap(em.nest_lines())
+    if checks:
+        body = em.versioned(body, checks)
+    lines += body
     text = render("nest.c.j2", lines=lines)
     return text.replace("\n", src.newline) if src.newline != "\n" else text
 
@@ -400,3 +440,54 @@ def guard_comment(what: str, constrained: list[str], assumptions: str, command: 
 
 
 GUARD_MARK = re.compile(r"/\*\s*looptile:")
+
+
+def _partials(a: Affine) -> list[Affine]:
+    """The values C computes while evaluating ``c_affine(a)`` left to right: each product
+    and each partial sum."""
+    out: list[Affine] = []
+    acc = Affine()
+    for n, c in a.terms:
+        term = Affine(((n, c),))
+        out.append(term)
+        acc = acc + term
+        out.append(acc)
+    if a.const:
+        out.append(acc + Affine(const=a.const))
+    return out
+
+
+def printed_expressions(nest: Nest, plan: TilePlan, facts: EmitFacts) -> list[tuple[Affine, int, bool]]:
+    """Every affine expression that emission prints from the analysis (hulls, moved-loop
+    bounds, whole-tile tests), as (partial value, bits, signed) of the C type it is
+    computed in, for the overflow check."""
+    types = {p.name: p.ctype for p in nest.params}
+    out: list[tuple[Affine, int, bool]] = []
+
+    def add(a: Affine, lp: Loop) -> None:
+        bits, signed = lp.ctype.bits, lp.ctype.signed
+        for n in a.names():
+            t = types.get(n)
+            if t is not None and t.is_int:
+                bits, signed = max(bits, t.bits), signed and t.signed
+        out.extend((p, bits, signed) for p in _partials(a))
+
+    one = Affine(const=1)
+    for s in plan.slots:
+        lp = nest.loop(s.iterator)
+        if s.hull is not None:
+            lo, hi = s.hull
+            for a in ((lo, hi + one) if lp.direction > 0 else (hi, lo, lo - one)):
+                add(a, lp)
+        if s.scan is not None:
+            lowers, uppers = s.scan
+            for a in (lowers if lp.direction > 0 else uppers):
+                add(a, lp)
+            for a in ([u + one for u in uppers] if lp.direction > 0 else lowers):
+                add(a, lp)
+    first = nest.loop(plan.band[0]) if plan.band else nest.perfect[0]
+    for a, _eq in facts.full_extra:
+        left, right, lc, rc = condition_sides(a, first.ctype.signed)
+        add(_Ordered(tuple(left), lc), first)
+        add(_Ordered(tuple(right), rc), first)
+    return out

@@ -7,13 +7,13 @@ from __future__ import annotations
 import os
 import re
 import subprocess
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 from pycparser import c_parser
 
 from . import deps, extract, frontend, toolchain
 from .deps import Dependence, Legality, NestAnalysis, Witness
-from .emit import GUARD_MARK, EmitFacts, emit_nest, full_form, guard_comment, split_point
+from .emit import GUARD_MARK, EmitFacts, emit_nest, full_form, guard_comment, printed_expressions, split_point
 from .errors import InternalError, Refusal, UsageError
 from .flags import CompileFlags
 from .frontend import LoopSite, TranslationUnit
@@ -28,7 +28,8 @@ class TileOptions:
     assumptions: tuple[str, ...] = ()  # --assume, recorded, not checked
     assume_pure: frozenset[str] = frozenset()
     force: bool = False
-    command: str = ""  # the command line that produces the rewrite, for the guard comment
+    command: str = ""
+    split_fallback: bool = True  # default remainder style: fall back to clamp where split cannot be built  # the command line that produces the rewrite, for the guard comment
 
 
 @dataclass(frozen=True)
@@ -171,6 +172,10 @@ def _scan_fn(analysis: NestAnalysis):
     return scan
 
 
+class SplitImpossible(Exception):
+    """The whole-tile test of the split style is not one conjunction of affine conditions."""
+
+
 def _loop_facts(nest: Nest, plan: TilePlan, kept: tuple[str, ...]) -> list[Affine]:
     """``a >= 0`` facts that the emitted loop headers guarantee inside the loops outside the
     whole-tile test: tile iterators within their loops' ranges, and the values of the
@@ -230,12 +235,32 @@ def emit_facts(nest: Nest, analysis: NestAnalysis, plan: TilePlan, c89: bool) ->
         try:
             extra = tuple(deps.full_tile_constraints(analysis, boxed, sp.kept, known))
         except deps.BoundsNotAffine as exc:
-            raise Refusal(f"the whole-tile test of this band is not one conjunction of affine conditions ({exc}); "
-                          "use --remainder clamp", path=nest.path, line=nest.line, column=nest.col) from None
+            raise SplitImpossible(str(exc)) from None
     return EmitFacts(frozenset(wide), c89, extra)
 
 
-def guard_text(nest: Nest, plan: TilePlan, analysis: NestAnalysis, opts: TileOptions) -> str:
+def _overflow_bounds(nest: Nest, analysis: NestAnalysis, plan: TilePlan, facts: EmitFacts) -> list[str]:
+    """C conditions (``n <= 2147483631``) under which the printed expressions cannot overflow."""
+    tiles = {s.name: s.iterator for s in plan.slots if s.kind == "tile"}
+    try:
+        bounds = deps.overflow_guard(analysis, tiles, printed_expressions(nest, plan, facts))
+    except deps.BoundsNotAffine as exc:
+        raise Refusal(f"cannot bound the values the rewritten loop bounds compute ({exc}), so the rewrite could "
+                      "overflow for some sizes", path=nest.path, line=nest.line, column=nest.col) from None
+    spell = {p.name: p for p in nest.params}
+    out = []
+    for name, op, value in bounds:
+        p = spell[name]
+        if p.kind == "opaque" or p.kind == "macro":
+            raise Refusal(f"the rewrite needs {p.text} {op} {value} to be safe from overflow, which looptile does "
+                          "not check for this kind of bound", path=nest.path, line=nest.line, column=nest.col)
+        suffix = "" if -2**31 <= value < 2**31 else ("L" if -2**63 <= value < 2**63 else "UL")
+        out.append(f"{p.text} {op} {value}{suffix}")
+    return out
+
+
+def guard_text(nest: Nest, plan: TilePlan, analysis: NestAnalysis, opts: TileOptions,
+               checked: list[str] | None = None) -> str:
     deps = summarize(analysis.dependences())
     constrained = []
     if deps:
@@ -252,6 +277,9 @@ def guard_text(nest: Nest, plan: TilePlan, analysis: NestAnalysis, opts: TileOpt
     if opaque:
         assumes.append(f"the nest does not change {', '.join(opaque)}")
     assumes += [f"{a} (asserted by the user)" for a in opts.assumptions]
+    if checked:
+        assumes.append(f"{' && '.join(checked)}, so that no bound overflows (checked: otherwise the original "
+                       "nest runs)")
     assumes += [f"{name} == {value} (checked by #if)" for name, value in nest.macros_used]
     return guard_comment(plan.describe(), constrained, "; ".join(assumes) or "nothing", opts.command)
 
@@ -279,8 +307,20 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
         head, details = describe_witness(what, legality.witness, nest)
         raise Refusal(head, path=nest.path, line=nest.line, column=nest.col,
                       source_line=src.line_text(nest.line), details=details)
-    facts = emit_facts(nest, analysis, plan, tu.flags.c89)
-    text = emit_nest(src, nest, plan, facts, guard_text(nest, plan, analysis, opts))
+    notes: list[str] = []
+    try:
+        facts = emit_facts(nest, analysis, plan, tu.flags.c89)
+    except SplitImpossible:
+        if not opts.split_fallback:
+            raise Refusal("--remainder split needs a whole-tile test, and for this band it is not one conjunction "
+                          "of affine conditions; use --remainder clamp", path=nest.path, line=nest.line,
+                          column=nest.col) from None
+        plan = replace(plan, remainder="clamp")
+        facts = emit_facts(nest, analysis, plan, tu.flags.c89)
+        notes.append("the whole-tile test of this band is not one conjunction of affine conditions, so the "
+                     "remainder style is clamp")
+    guard_bounds = _overflow_bounds(nest, analysis, plan, facts)
+    text = emit_nest(src, nest, plan, facts, guard_text(nest, plan, analysis, opts, guard_bounds), guard_bounds)
     guard = _macro_guard(nest, src)
     if guard:
         text = "\n".join(guard.split("\n")[:1] + [src.indent_of(nest.start) + g for g in guard.split("\n")[1:]]) \
@@ -288,8 +328,10 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
         text = text.replace("\n", src.newline) if src.newline != "\n" else text
     new = apply_edits(src.data, [Edit(nest.start, nest.end, text)])
     check_parses(src, tu.flags, new)
-    notes = tuple(f"assumed: {a}" for a in opts.assumptions)
-    return TileOutcome(src.path, src.data, new, nest, plan, notes)
+    notes += [f"assumed: {a}" for a in opts.assumptions]
+    notes += [f"the rewrite runs only when {c} (no bound can overflow then); the original nest runs otherwise"
+              for c in guard_bounds]
+    return TileOutcome(src.path, src.data, new, nest, plan, tuple(notes))
 
 
 def check_parses(src: SourceFile, flags: CompileFlags, new: bytes) -> None:
