@@ -491,8 +491,10 @@ def full_tile_constraints(analysis: NestAnalysis, boxed: list[tuple[str, str, in
     """
     nest = analysis.nest
     band = [b for b, _, _ in boxed]
-    its = nest.iterators
-    others = [i for i in its if i not in band and i not in kept]
+    # Loops inside the test that are not boxed keep their own headers: only the band's
+    # and the outer loops' constraints decide whether the box is inside.
+    its = [i for i in nest.iterators if i in band or i in kept]
+    others: list[str] = []
     tiles = [t for _, t, _ in boxed]
     extra = list(kept) + tiles
     present = {_from_isl(p) for p in analysis.params} | set(extra)
@@ -501,7 +503,7 @@ def full_tile_constraints(analysis: NestAnalysis, boxed: list[tuple[str, str, in
     dims = band + others
     dom = _params_set(analysis, extra, f"{{ X[{', '.join(_isl_name(i) for i in dims)}] : {cons} }}")
     if others:
-        dom = dom.project_out(isl.dim_type.set, len(band), len(others))
+        dom = dom.project_out(isl.dim_type.set, len(band), len(others)).set_tuple_name("X")
     box_parts = []
     for it, t, span in boxed:
         lp = analysis.loops[it]
