@@ -111,7 +111,7 @@ def report(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] = fr
         depth, node = 0, site.node
         while node is not None:
             depth += 1
-            node = extract._single_for(node.stmt)
+            node = extract.single_for(node.stmt)
         return NestReport(**base, depth=depth, iterators=(), loops=(), perfect=False, analysable=False,
                           reason=exc.headline())
 

@@ -27,7 +27,8 @@ def frontend_options(f):
     """The preprocessor flags, as a compiler takes them."""
     opts = [
         click.option("-I", "includes", multiple=True, metavar="DIR", help="Add DIR to the include path."),
-        click.option("-isystem", "isystem", multiple=True, metavar="DIR", help="Add DIR as a system include directory."),
+        click.option("-isystem", "isystem", multiple=True, metavar="DIR",
+                     help="Add DIR as a system include directory."),
         click.option("-D", "defines", multiple=True, metavar="NAME[=VAL]", help="Define a macro."),
         click.option("-U", "undefines", multiple=True, metavar="NAME", help="Undefine a macro."),
         click.option("-include", "include_files", multiple=True, metavar="FILE", help="Include FILE first."),

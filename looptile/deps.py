@@ -508,7 +508,8 @@ def full_tile_constraints(analysis: NestAnalysis, boxed: list[tuple[str, str, in
     for it, t, span in boxed:
         lp = analysis.loops[it]
         x, tt = _isl_name(it), _isl_name(t)
-        box_parts.append(f"{tt} <= {x} <= {tt} + {span - 1}" if lp.direction > 0 else f"{tt} - {span - 1} <= {x} <= {tt}")
+        box_parts.append(f"{tt} <= {x} <= {tt} + {span - 1}" if lp.direction > 0
+                         else f"{tt} - {span - 1} <= {x} <= {tt}")
     box = _params_set(analysis, extra, f"{{ X[{', '.join(_isl_name(i) for i in band)}] : {' and '.join(box_parts)} }}")
     full = box.subtract(dom).params().complement()
     facts = [f"{k.render(_isl_name)} >= 0" for k in known]

@@ -339,7 +339,7 @@ class NestEmitter:
             return self.loops_and_body([self.plain_header(s) for s in slots], 0)
         last_tile = tile_positions[-1]
         single = len(plan.band) == 1 and plan.remainder == "split"
-        for k, s in enumerate(slots[: last_tile + (0 if single else 1)]):
+        for s in slots[: last_tile + (0 if single else 1)]:
             if s.kind == "tile":
                 tiles[s.iterator] = s.name
                 headers.append(self.tile_header(s))

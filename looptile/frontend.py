@@ -51,6 +51,7 @@ class TranslationUnit:
     functions: list[FunctionInfo]
     identifiers: set[str]
     altered: frozenset[int] = frozenset()  # lines the header flags change (see altered_lines)
+    cache: dict = field(default_factory=dict)  # per-unit memo of later stages (types, scopes)
 
     def loops(self) -> list[LoopSite]:
         return [s for f in self.functions for s in f.loops]

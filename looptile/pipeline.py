@@ -28,8 +28,8 @@ class TileOptions:
     assumptions: tuple[str, ...] = ()  # --assume, recorded, not checked
     assume_pure: frozenset[str] = frozenset()
     force: bool = False
-    command: str = ""
-    split_fallback: bool = True  # default remainder style: fall back to clamp where split cannot be built  # the command line that produces the rewrite, for the guard comment
+    command: str = ""  # the command line that produces the rewrite, for the guard comment
+    split_fallback: bool = True  # default remainder style: fall back to clamp where split cannot be built
 
 
 @dataclass(frozen=True)
@@ -113,7 +113,8 @@ def describe_witness(what: str, w: Witness, nest: Nest) -> tuple[str, list[str]]
 def summarize(deps: list[Dependence]) -> list[str]:
     groups: dict[tuple[str, str], list[str]] = {}
     for d in deps:
-        vec = "(" + ", ".join(map(str, d.distance)) + ")" if d.distance is not None else "(" + ", ".join(d.direction) + ")"
+        parts = map(str, d.distance) if d.distance is not None else d.direction
+        vec = "(" + ", ".join(parts) + ")"
         groups.setdefault((d.array, vec), [])
         if d.kind not in groups[(d.array, vec)]:
             groups[(d.array, vec)].append(d.kind)

@@ -133,7 +133,9 @@ def tokenize(text: str, start: int = 0, end: int | None = None) -> list[Token]:
             pos = stop
             continue
         at_line_start = False
-        if ch in "\"'" or (ch in "LuU" and nxt in "\"'") or (text.startswith("u8", pos) and text[pos + 2 : pos + 3] in "\"'" and pos + 2 < end):
+        quotes = ("\"", "'")
+        prefixed = ch in "LuU" and nxt in quotes or text.startswith("u8", pos) and text[pos + 2:pos + 3] in quotes
+        if ch in "\"'" or prefixed:
             q = pos
             while text[q] not in "\"'":
                 q += 1

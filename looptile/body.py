@@ -1,0 +1,253 @@
+"""Loop bodies: statements and their array accesses, or a refusal naming the construct."""
+from __future__ import annotations
+
+from pycparser import c_ast
+
+from .affine import Ctx, NotAffine, column_on_line, int_affine, outer_iterators
+from .ctype import CType
+from .headers import extract_loop
+from .model import Access, Affine, ArrayInfo, Obligation, Statement
+
+# Pure functions of math.h (C11 7.12) that looptile treats as side-effect free.
+# Common practice: errno updates on domain errors are ignored (said in the guard comment).
+PURE_MATH = frozenset(
+    """acos asin atan atan2 cos sin tan acosh asinh atanh cosh sinh tanh exp exp2 expm1
+    log log10 log1p log2 logb cbrt fabs hypot pow sqrt erf erfc tgamma lgamma ceil floor
+    nearbyint rint round trunc fmod remainder copysign fdim fmax fmin fma ldexp""".split()
+)
+PURE = PURE_MATH | {f + "f" for f in PURE_MATH} | {f + "l" for f in PURE_MATH}
+
+
+
+
+class BodyWalker:
+    """Walks the statements of the nest, collecting statements and their accesses."""
+
+    def __init__(self, ctx: Ctx) -> None:
+        self.ctx = ctx
+        self.accesses: list[Access] = []
+
+    # -- statements
+    def stmt(self, node: c_ast.Node, path: tuple[int | str, ...]) -> None:
+        ctx = self.ctx
+        if isinstance(node, c_ast.Compound):
+            ctx.locals_.append({})
+            for k, item in enumerate(node.block_items or []):
+                self.stmt(item, path + (k,))
+            ctx.locals_.pop()
+        elif isinstance(node, c_ast.For):
+            self.inner_for(node, path)
+        elif isinstance(node, c_ast.Decl):
+            self.decl(node, path)
+        elif isinstance(node, c_ast.If):
+            self.leaf(node.cond, path + (0,), node)
+            self.stmt(node.iftrue, path + (1,))
+            if node.iffalse is not None:
+                self.stmt(node.iffalse, path + (2,))
+        elif isinstance(node, (c_ast.Assignment, c_ast.UnaryOp, c_ast.FuncCall, c_ast.ExprList,
+                               c_ast.TernaryOp, c_ast.BinaryOp, c_ast.Cast, c_ast.ID, c_ast.ArrayRef)):
+            self.leaf(node, path, node)
+        elif isinstance(node, c_ast.EmptyStatement):
+            pass
+        elif isinstance(node, c_ast.Pragma):
+            raise ctx.refuse(f"'#pragma {node.string}' inside the nest would be detached from its place by the "
+                             "rewrite; remove it or select a nest without it", node)
+        elif isinstance(node, (c_ast.Break, c_ast.Continue, c_ast.Goto, c_ast.Return, c_ast.Label)):
+            word = type(node).__name__.lower()
+            raise ctx.refuse(f"'{word}' inside the nest is an early exit or jump; a rewrite cannot keep its meaning",
+                             node)
+        elif isinstance(node, (c_ast.While, c_ast.DoWhile)):
+            raise ctx.refuse("a while/do loop inside the nest has no affine trip count", node)
+        elif isinstance(node, c_ast.Switch):
+            raise ctx.refuse("a switch statement inside the nest is outside the model", node)
+        else:
+            raise ctx.refuse(f"{type(node).__name__} inside the nest is outside the model", node)
+
+    def inner_for(self, node: c_ast.For, path: tuple[int | str, ...]) -> None:
+        ctx = self.ctx
+        site = next((s for s in ctx.tu.loops() if s.node is node), None)
+        loop = extract_loop(ctx, node, site.token_index if site else None)
+        if loop.iterator in ctx.iterators:
+            raise ctx.refuse(f"loop '{loop.iterator}' reuses the iterator of an enclosing loop", node)
+        if not loop.declared_in_for:
+            ctx.outer_declared.append(loop.iterator)
+        ctx.inner.append(loop)
+        ctx.iterators.append(loop.iterator)
+        ctx.locals_.append({})
+        self.stmt(node.stmt, path + (loop.iterator, 0))
+        ctx.locals_.pop()
+        ctx.iterators.pop()
+
+    def decl(self, node: c_ast.Decl, path: tuple[int | str, ...]) -> None:
+        ctx = self.ctx
+        t = ctx.types.of(node.type)
+        if "static" in (node.storage or []) or "extern" in (node.storage or []):
+            raise ctx.refuse(f"the declaration of '{node.name}' inside the nest is static or extern", node)
+        if t.volatile or t.scalar_elem().volatile:
+            raise ctx.refuse(f"'{node.name}' is volatile", node)
+        if t.kind not in ("int", "float", "array"):
+            raise ctx.refuse(f"the local '{node.name}' is not a number or an array of numbers", node)
+        key = f"{node.name}@{node.coord.line}" + ("" if len(ctx.locals_) < 2 else f".{len(ctx.locals_)}")
+        ndims = t.ndims if t.kind == "array" else 0
+        elem = t.elem if t.kind == "array" else t
+        # A block-local variable is private to one iteration of every enclosing loop of the nest:
+        # the model indexes it by those iterators (prefix dimensions).
+        ctx.arrays[key] = ArrayInfo(key, node.name, elem, ndims + len(ctx.iterators), local=True)
+        ctx.locals_[-1][node.name] = key
+        if node.init is not None:
+            if isinstance(node.init, c_ast.InitList):
+                raise ctx.refuse(f"the initialiser list of '{node.name}' is outside the model", node)
+            if ndims:
+                raise ctx.refuse(f"the local array '{node.name}' has an initialiser", node)
+            self.accesses = []
+            self.expr(node.init)
+            self.accesses.append(Access(key, tuple(Affine.symbol(i) for i in ctx.iterators), True))
+            self._finish(node, path)
+
+    def leaf(self, node: c_ast.Node, path: tuple[int | str, ...], at: c_ast.Node) -> None:
+        self.accesses = []
+        self.expr(node)
+        self._finish(at, path)
+
+    def _finish(self, at: c_ast.Node, path: tuple[int | str, ...]) -> None:
+        ctx = self.ctx
+        line = at.coord.line if at.coord else ctx.site.line
+        col = column_on_line(ctx.tu, line, at) or 1
+        name = f"S{len(ctx.statements) + 1}"
+        ctx.statements.append(Statement(name, line, col, tuple(ctx.iterators), path, tuple(self.accesses)))
+
+    # -- expressions
+    def expr(self, node: c_ast.Node) -> None:
+        ctx = self.ctx
+        if isinstance(node, c_ast.Assignment):
+            if node.op != "=":
+                self.lvalue(node.lvalue, write=False)
+            self.expr(node.rvalue)
+            self.lvalue(node.lvalue, write=True)
+        elif isinstance(node, c_ast.UnaryOp):
+            if node.op in ("++", "--", "p++", "p--"):
+                self.lvalue(node.expr, write=False)
+                self.lvalue(node.expr, write=True)
+            elif node.op == "&":
+                raise ctx.refuse("taking an address inside the nest (&) is a pointer trick the analysis cannot follow",
+                                 node)
+            elif node.op == "*":
+                raise ctx.refuse("a pointer dereference inside the nest is outside the model; write it as an array "
+                                 "element with an affine subscript", node)
+            elif node.op == "sizeof":
+                pass
+            else:
+                self.expr(node.expr)
+        elif isinstance(node, c_ast.BinaryOp):
+            self.expr(node.left)
+            self.expr(node.right)
+        elif isinstance(node, c_ast.TernaryOp):
+            self.expr(node.cond)
+            self.expr(node.iftrue)
+            self.expr(node.iffalse)
+        elif isinstance(node, c_ast.Cast):
+            self.expr(node.expr)
+        elif isinstance(node, c_ast.ExprList):
+            for e in node.exprs:
+                self.expr(e)
+        elif isinstance(node, c_ast.FuncCall):
+            self.call(node)
+        elif isinstance(node, (c_ast.ID, c_ast.ArrayRef)):
+            self.lvalue(node, write=False)
+        elif isinstance(node, c_ast.Constant):
+            pass
+        elif isinstance(node, c_ast.StructRef):
+            raise ctx.refuse("struct member access inside the nest is outside the model", node)
+        else:
+            raise ctx.refuse(f"{type(node).__name__} inside the nest is outside the model", node)
+
+    def call(self, node: c_ast.FuncCall) -> None:
+        ctx = self.ctx
+        name = node.name.name if isinstance(node.name, c_ast.ID) else None
+        sym = ctx.scope.get(name) if name else None
+        pure = name is not None and (
+            name in ctx.assume_pure or (name in PURE and sym is not None and sym.kind == "function" and sym.system)
+        )
+        if not pure:
+            raise ctx.refuse(
+                f"the call to '{name or 'a function pointer'}' may have side effects the analysis cannot see; "
+                f"if it is pure, say so with --assume-pure {name or 'NAME'}", node)
+        for a in (node.args.exprs if node.args else []):
+            self.expr(a)
+
+    def lvalue(self, node: c_ast.Node, write: bool) -> None:
+        ctx = self.ctx
+        subs: list[c_ast.Node] = []
+        base = node
+        while isinstance(base, c_ast.ArrayRef):
+            subs.insert(0, base.subscript)
+            base = base.name
+        if not isinstance(base, c_ast.ID):
+            if isinstance(base, c_ast.StructRef):
+                raise ctx.refuse("struct member access inside the nest is outside the model", base)
+            raise ctx.refuse("an element whose base is not a named array is outside the model", node)
+        name = base.name
+        for s in subs:
+            self.expr(s)
+        if name in ctx.iterators and not subs:
+            if write:
+                raise ctx.refuse(f"the body writes the iterator '{name}'", node)
+            return
+        if name in outer_iterators(ctx) and not subs and not write:
+            return
+        key, info = self.array_of(name, base, len(subs))
+        affs = []
+        for s in subs:
+            try:
+                a, t, obl = int_affine(ctx, s)
+            except NotAffine as exc:
+                raise ctx.refuse(f"a subscript of '{name}' is not an affine function of the loop iterators and "
+                                 f"parameters; {exc.reason}", exc.node or s) from None
+            line = s.coord.line if s.coord else ctx.site.line
+            col = column_on_line(ctx.tu, line, node) or 1
+            for o in obl:
+                ctx.obligations.append(Obligation(o, tuple(ctx.iterators), line, col, f"a subscript of '{name}'"))
+            affs.append(a)
+        if info.local:
+            affs = [Affine.symbol(i) for i in ctx.iterators[: info.ndims - len(affs)]] + affs
+        if write and not subs:
+            ctx.written.setdefault(name, node)
+        self.accesses.append(Access(key, tuple(affs), write))
+
+    def array_of(self, name: str, node: c_ast.Node, nsubs: int) -> tuple[str, ArrayInfo]:
+        ctx = self.ctx
+        for scope in reversed(ctx.locals_):
+            if name in scope:
+                info = ctx.arrays[scope[name]]
+                if info.ndims - (len(ctx.iterators) if False else 0) < nsubs:
+                    raise ctx.refuse(f"'{name}' has fewer dimensions than subscripts", node)
+                return info.key, info
+        sym = ctx.scope.get(name)
+        if sym is None or sym.kind not in ("param", "local", "global"):
+            raise ctx.refuse(f"'{name}' is not a variable the analysis knows", node)
+        t = sym.ctype
+        if t.volatile or t.scalar_elem().volatile:
+            raise ctx.refuse(f"'{name}' is volatile; its accesses must not be reordered", node)
+        if t.kind in ("int", "float"):
+            ndims, elem = 0, t
+        elif t.kind in ("array", "pointer"):
+            ndims, elem = array_dims(t)
+        else:
+            raise ctx.refuse(f"'{name}' is not an array or a number", node)
+        if nsubs != ndims:
+            raise ctx.refuse(f"'{name}' has {ndims} dimension(s) but is used with {nsubs} subscript(s); "
+                             "a partial subscript or a pointer-typed element is outside the model", node)
+        if elem.kind not in ("int", "float"):
+            raise ctx.refuse(f"the elements of '{name}' are not numbers", node)
+        info = ctx.arrays.setdefault(name, ArrayInfo(name, name, elem, ndims, restrict=t.restrict))
+        return name, info
+
+
+def array_dims(t: CType) -> tuple[int, CType]:
+    n = 0
+    while t.kind in ("array", "pointer") and t.elem is not None:
+        n += t.ndims
+        t = t.elem
+    return n, t
+
+
