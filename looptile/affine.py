@@ -79,8 +79,8 @@ def column_on_line(tu: TranslationUnit, line: int, node: c_ast.Node) -> int | No
         return None
     text = tu.source.line_text(line)
     start = tu.source.offset(line)
-    for t in tu.tokens:
-        if t.start >= start and t.start < start + len(text) + 1 and t.text == want:
+    for t in tu.code_between(start, start + len(text) + 1):
+        if t.text == want:
             return t.start - start + 1
     return None
 

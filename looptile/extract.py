@@ -28,7 +28,7 @@ def _scope_of(tu: TranslationUnit, site: LoopSite) -> tuple[TypeTable, dict[str,
     func = next(f for f in tu.functions if f.name == site.function)
     key = ("scopes", func.name)
     if key not in tu.cache:
-        tu.cache[key] = visible_at_loops(tu.ast, types, func.node)
+        tu.cache[key] = visible_at_loops(tu.ast, types, func.node, tu.cache)
     return types, tu.cache[key][id(site.node)]
 
 
@@ -68,9 +68,7 @@ def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] 
     outer = perfect[0]
     innermost = perfect[-1]
     comments, pps = [], []
-    for t in tu.all_tokens:
-        if t.start < outer.for_offset or t.end > outer.body_end:
-            continue
+    for t in tu.all_between(outer.for_offset, outer.body_end):
         if innermost.body_start <= t.start < innermost.body_end:
             continue
         if any(lp.start.start <= t.start < lp.start.end or lp.limit.start <= t.start < lp.limit.end for lp in perfect):
@@ -97,9 +95,7 @@ def _subscript_macros(tu: TranslationUnit, innermost: Loop) -> list[tuple[str, s
     """Integer macros spelled inside subscripts of the body: the proof used their values."""
     out: list[tuple[str, str]] = []
     depth = 0
-    for t in tu.tokens:
-        if not innermost.body_start <= t.start < innermost.body_end:
-            continue
+    for t in tu.code_between(innermost.body_start, innermost.body_end):
         if t.text == "[":
             depth += 1
         elif t.text == "]":
@@ -114,11 +110,10 @@ def _subscript_macros(tu: TranslationUnit, innermost: Loop) -> list[tuple[str, s
 def _check_pragma_on(ctx: Ctx, outer: Loop) -> None:
     """A pragma right before the nest applies to its outermost loop; a rewrite would move it."""
     prev = None
-    for t in ctx.tu.all_tokens:
-        if t.start >= outer.for_offset:
-            break
+    for t in reversed(ctx.tu.all_between(0, outer.for_offset)):
         if t.kind != "comment":
             prev = t
+            break
     if prev is not None and prev.kind == "pp" and re.match(r"#\s*pragma\b", prev.text):
         name = " ".join(prev.text.split())
         raise ctx.refuse(f"'{name}' applies to this loop nest; the rewrite would attach it to a different loop, "
@@ -190,22 +185,23 @@ def live_after(tu: TranslationUnit, nest: Nest, name: str) -> int | None:
     top = site
     while top.parent is not None:
         top = top.parent
-    top_start = tu.tokens[top.token_index].start if top.token_index is not None else nest.start
-    end_line = func.node.body.coord.line if func.node.body.coord else 0
-    regions = [(nest.end, None)]
-    if top is not site:
-        regions.insert(0, (top_start, nest.start))
     toks = tu.tokens
+    # Up to the end of the function: the brace depth at the nest's end says how many blocks to close.
+    open_blocks = sum(1 if t.text == "{" else -1 if t.text == "}" else 0 for t in toks[:tu.code_index(nest.end)])
+    regions: list[tuple[int, int | None]] = [(nest.end, None)]
+    if top is not site and top.token_index is not None:
+        regions.insert(0, (toks[top.token_index].start, nest.start))
     for begin, stop in regions:
         depth = 0
-        for k, t in enumerate(toks):
-            if t.start < begin or (stop is not None and t.start >= stop):
-                continue
+        first = tu.code_index(begin)
+        last = tu.code_index(stop) if stop is not None else len(toks)
+        for k in range(first, last):
+            t = toks[k]
             if t.text == "{":
                 depth += 1
             elif t.text == "}":
                 depth -= 1
-                if depth < -_depth_at(toks, begin, func_line=end_line):
+                if depth <= -open_blocks:  # the function's closing brace
                     break
             if t.kind == "id" and t.text == name:
                 nxt = toks[k + 1].text if k + 1 < len(toks) else ""
@@ -213,16 +209,3 @@ def live_after(tu: TranslationUnit, nest: Nest, name: str) -> int | None:
                     break  # assigned before any use: the old value is dead
                 return t.start
     return None
-
-
-def _depth_at(toks: list[Token], offset: int, func_line: int) -> int:
-    """Brace depth inside the function at ``offset`` (number of open blocks)."""
-    depth = 0
-    for t in toks:
-        if t.start >= offset:
-            break
-        if t.text == "{":
-            depth += 1
-        elif t.text == "}":
-            depth -= 1
-    return depth - 1

@@ -6,6 +6,7 @@ original text (same line, same order), which gives exact byte positions.
 """
 from __future__ import annotations
 
+import bisect
 import os
 import re
 from dataclasses import dataclass, field
@@ -56,6 +57,22 @@ class TranslationUnit:
     def loops(self) -> list[LoopSite]:
         return [s for f in self.functions for s in f.loops]
 
+    def code_index(self, offset: int) -> int:
+        """Index of the first code token starting at or after ``offset``."""
+        if "code_starts" not in self.cache:
+            self.cache["code_starts"] = [t.start for t in self.tokens]
+        return bisect.bisect_left(self.cache["code_starts"], offset)
+
+    def code_between(self, start: int, end: int) -> list[Token]:
+        return self.tokens[self.code_index(start):self.code_index(end)]
+
+    def all_between(self, start: int, end: int) -> list[Token]:
+        """Tokens, comments and preprocessor lines included, starting in [start, end)."""
+        if "all_starts" not in self.cache:
+            self.cache["all_starts"] = [t.start for t in self.all_tokens]
+        starts = self.cache["all_starts"]
+        return self.all_tokens[bisect.bisect_left(starts, start):bisect.bisect_left(starts, end)]
+
 
 def main_file_lines(pre: str, main: str) -> list[tuple[int, str]]:
     """(original line, text) of the preprocessed lines that come from the main file."""
@@ -93,11 +110,14 @@ def altered_lines(src: SourceFile, flags: CompileFlags, parsed_text: str) -> fro
     def by_line(text: str) -> dict[int, str]:
         out: dict[int, list[str]] = {}
         for ln, t in main_file_lines(text, main):
-            out.setdefault(ln, []).append(_normalise(t))
-        return {ln: " ".join(x for x in parts if x) for ln, parts in out.items()}
+            out.setdefault(ln, []).append(t)
+        return {ln: " ".join(" ".join(parts).split()) for ln, parts in out.items()}
 
+    # Same preprocessor, same spacing rules: compare whitespace-collapsed text first and
+    # tokens only where that differs.
     a, b = by_line(plain), by_line(parsed_text)
-    return frozenset(ln for ln in set(a) | set(b) if a.get(ln, "") != b.get(ln, ""))
+    return frozenset(ln for ln in set(a) | set(b)
+                     if a.get(ln, "") != b.get(ln, "") and _normalise(a.get(ln, "")) != _normalise(b.get(ln, "")))
 
 
 def load(src: SourceFile, flags: CompileFlags) -> TranslationUnit:

@@ -66,20 +66,38 @@ class _Visible(c_ast.NodeVisitor):
                 self.visit(part)
 
 
-def file_scope(ast: c_ast.FileAST, types: TypeTable, upto: c_ast.FuncDef) -> dict[str, Symbol]:
+def file_scope(ast: c_ast.FileAST, types: TypeTable, upto: c_ast.FuncDef,
+               cache: dict | None = None) -> dict[str, Symbol]:
     """Globals, functions and enumerators declared before ``upto``."""
+    entries = cache.get("file_symbols") if cache is not None else None
+    if entries is None:
+        entries = _file_symbols(ast, types)
+        if cache is not None:
+            cache["file_symbols"] = entries
     syms: dict[str, Symbol] = {}
-    for ext in ast.ext:
+    for ext, name, sym in entries:
         if ext is upto:
             break
+        if sym is not None:
+            syms[name] = sym
+    return syms
+
+
+def _file_symbols(ast: c_ast.FileAST, types: TypeTable) -> list[tuple[c_ast.Node, str, Symbol | None]]:
+    """Every file-scope declaration in order, as (external declaration, name, symbol)."""
+    out: list[tuple[c_ast.Node, str, Symbol | None]] = []
+    for ext in ast.ext:
         decl = ext.decl if isinstance(ext, c_ast.FuncDef) else ext
+        out.append((ext, "", None))
         if isinstance(decl, c_ast.Decl):
-            _enumerators(decl.type, syms)
+            enums: dict[str, Symbol] = {}
+            _enumerators(decl.type, enums)
+            out += [(ext, n, sym) for n, sym in enums.items()]
             if decl.name:
                 kind = "function" if isinstance(decl.type, c_ast.FuncDecl) else "global"
-                syms[decl.name] = Symbol(decl.name, types.of(decl.type), kind, decl,
-                                         system=_is_system(decl.coord), storage=tuple(decl.storage or ()))
-    return syms
+                out.append((ext, decl.name, Symbol(decl.name, types.of(decl.type), kind, decl,
+                                                   system=_is_system(decl.coord), storage=tuple(decl.storage or ()))))
+    return out
 
 
 def _enumerators(node: c_ast.Node, syms: dict[str, Symbol]) -> None:
@@ -98,9 +116,10 @@ def _enumerators(node: c_ast.Node, syms: dict[str, Symbol]) -> None:
             syms[e.name] = Symbol(e.name, CType("int", True, 32, 3, spelling="int"), "enum", e, value)
 
 
-def visible_at_loops(ast: c_ast.FileAST, types: TypeTable, func: c_ast.FuncDef) -> dict[int, dict[str, Symbol]]:
+def visible_at_loops(ast: c_ast.FileAST, types: TypeTable, func: c_ast.FuncDef,
+                     cache: dict | None = None) -> dict[int, dict[str, Symbol]]:
     """For every for statement of ``func`` (keyed by id of the node): the symbols in scope."""
-    base = file_scope(ast, types, func)
+    base = file_scope(ast, types, func, cache)
     fdecl = func.decl.type
     if isinstance(fdecl, c_ast.FuncDecl) and fdecl.args is not None:
         for p in fdecl.args.params:
