@@ -16,7 +16,7 @@ from .errors import Refusal
 from .frontend import LoopSite, TranslationUnit
 from .model import Affine, ArrayInfo, Bound, Loop, Obligation, Param, Statement
 from .scope import Symbol
-from .source import Token
+from .source import Token, tokenize
 
 
 class NotAffine(Exception):
@@ -57,32 +57,72 @@ class Ctx:
                        source_line=src.line_text(line) if line else None)
 
 
+_KEYWORDS = {c_ast.Break: "break", c_ast.Continue: "continue", c_ast.Goto: "goto", c_ast.Return: "return",
+             c_ast.While: "while", c_ast.DoWhile: "do", c_ast.Switch: "switch", c_ast.If: "if",
+             c_ast.For: "for", c_ast.Cast: "("}
+
+
+def first_spelling(node: c_ast.Node) -> str | None:
+    """The spelling of the first token of ``node``."""
+    while True:
+        if isinstance(node, c_ast.ID):
+            return node.name
+        if isinstance(node, c_ast.Constant):
+            return node.value
+        if isinstance(node, c_ast.UnaryOp):
+            if node.op in ("p++", "p--"):
+                node = node.expr
+                continue
+            return node.op
+        if isinstance(node, (c_ast.ArrayRef, c_ast.FuncCall, c_ast.StructRef)):
+            node = node.name
+            continue
+        if isinstance(node, c_ast.BinaryOp):
+            node = node.left
+            continue
+        if isinstance(node, c_ast.Assignment):
+            node = node.lvalue
+            continue
+        if isinstance(node, c_ast.TernaryOp):
+            node = node.cond
+            continue
+        if isinstance(node, c_ast.Decl):
+            return node.name
+        return _KEYWORDS.get(type(node))
+
+
 def column_on_line(tu: TranslationUnit, line: int, node: c_ast.Node) -> int | None:
-    """Byte column in the original of the first token of ``node`` (matched by spelling)."""
-    want = None
-    if isinstance(node, c_ast.ID):
-        want = node.name
-    elif isinstance(node, c_ast.FuncCall) and isinstance(node.name, c_ast.ID):
-        want = node.name.name
-    elif isinstance(node, c_ast.ArrayRef):
-        base = node
-        while isinstance(base, c_ast.ArrayRef):
-            base = base.name
-        want = getattr(base, "name", None)
-    elif isinstance(node, c_ast.StructRef):
-        return column_on_line(tu, line, node.name)
-    else:
-        want = {c_ast.Break: "break", c_ast.Continue: "continue", c_ast.Goto: "goto",
-                c_ast.Return: "return", c_ast.While: "while", c_ast.DoWhile: "do",
-                c_ast.Switch: "switch"}.get(type(node))
+    """Byte column in the original of the first token of ``node``.
+
+    pycparser's column is one of the preprocessed line (macros expanded, tabs as
+    they are): find which occurrence of the token's spelling it is there, and take
+    the same occurrence on the original line."""
+    start = tu.source.offset(line)
+    if isinstance(node, c_ast.UnaryOp) and node.op not in ("p++", "p--"):
+        # pycparser places a prefix operator at its operand: take the operator before it.
+        inner = column_on_line(tu, line, node.expr)
+        if inner is not None:
+            before = [t for t in tu.code_between(start, start + inner - 1) if t.text == node.op]
+            if before:
+                return before[-1].start - start + 1
+        return inner
+    want = first_spelling(node)
     if not want:
         return None
-    text = tu.source.line_text(line)
-    start = tu.source.offset(line)
-    for t in tu.code_between(start, start + len(text) + 1):
-        if t.text == want:
-            return t.start - start + 1
-    return None
+    original = [t for t in tu.code_between(start, start + len(tu.source.line_text(line)) + 1) if t.text == want]
+    if not original:
+        return None
+    occurrence = 0
+    col = node.coord.column if node.coord is not None else None
+    seen = 0
+    for fragment in tu.pre_lines.get(line, []):
+        toks = [t for t in tokenize(fragment) if t.text == want]
+        hit = next((k for k, t in enumerate(toks) if col is not None and t.start == col - 1), None)
+        if hit is not None:
+            occurrence = seen + hit
+            break
+        seen += len(toks)
+    return original[min(occurrence, len(original) - 1)].start - start + 1
 
 
 # ---------------------------------------------------------------- affine expressions

@@ -172,7 +172,10 @@ def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: 
         click.echo(f"{file}:{outcome.nest.line}:{outcome.nest.col}: note: {note}", err=True)
     if as_diff:
         rel = os.path.relpath(file) if not os.path.relpath(file).startswith("..") else file
-        sys.stdout.write(unified_diff(rel, outcome.original, outcome.new))
+        # The file's own bytes (latin-1 view), not re-encoded: the patch must match the file.
+        sys.stdout.flush()
+        sys.stdout.buffer.write(unified_diff(rel, outcome.original, outcome.new).encode("latin-1"))
+        sys.stdout.flush()
     elif output:
         write_atomic(output, outcome.new, mode_from=file)
     elif in_place:

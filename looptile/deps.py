@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import islpy as isl
 
+from .errors import UsageError
 from .model import Affine, Loop, Nest, Obligation, ScheduleDim, Statement
 
 _ctx = isl.DEFAULT_CONTEXT
@@ -83,9 +84,17 @@ class NestAnalysis:
         for p in nest.params:
             if p.ctype.is_unsigned:
                 ctx_parts.append(f"{p.name} >= 0")
-        ctx_parts += list(assumptions)
-        self.context = self._set("{ : " + " and ".join(self._rename(c) for c in ctx_parts) + " }") if ctx_parts \
-            else self._set("{ : }")
+        # A macro whose value the body's subscripts used (guarded by #if in the output) has that
+        # value in the bounds too.
+        names = {p.name for p in nest.params}
+        ctx_parts += [f"{name} = {value}" for name, value in nest.macros_used if name in names]
+        self.context = self._context(ctx_parts)
+        if assumptions:
+            try:
+                self.context = self.context.intersect(self._context(list(assumptions)))
+            except isl.Error:
+                raise UsageError(f"--assume {' '.join(repr(a) for a in assumptions)} is not a condition on the "
+                                 "nest's parameters (write e.g. 'n >= 1' or 'n >= m and m >= 0')") from None
         self.tail_len = max((len(s.tail) for s in nest.statements), default=0)
         self.domains = {s.name: self._domain(s) for s in nest.statements}
         self.stmts = {s.name: s for s in nest.statements}
@@ -100,20 +109,27 @@ class NestAnalysis:
         return isl.Set(self._prefix() + body, context=_ctx)
 
     def _rename(self, text: str) -> str:
-        names = {p.name for p in self.nest.params} | set(self.loops)
-        ctx_names = set(re.findall(r"[A-Za-z_]\w*", " ".join(self.nest.context)))
+        """A C-like condition on parameters in isl syntax, every name in isl spelling."""
+        keywords = ("and", "or", "not", "exists", "floor", "min", "max", "mod")
 
         def sub(m: re.Match) -> str:
             w = m.group(0)
-            if w in ("and", "or", "not", "exists", "floor", "min", "max", "mod"):
-                return w
-            if w in names or w in ctx_names:
-                return _isl_name(w)
-            return w
+            return w if w in keywords else _isl_name(w)
 
         text = text.replace("$", "_q")
         text = text.replace("&&", " and ").replace("||", " or ").replace("==", "=")
         return re.sub(r"(?<![_\w])[A-Za-z]\w*", sub, text)
+
+    def _context(self, parts: list[str]) -> isl.Set:
+        """Constraints on parameters: enclosing loops, unsigned types, user assumptions.
+
+        They may name parameters the nest does not use (an enclosing loop's bound);
+        isl aligns those when the context is intersected with the nest's sets."""
+        if not parts:
+            return self._set("{ : }")
+        body = " and ".join(f"({self._rename(c)})" for c in parts)
+        names = sorted(set(re.findall(r"(?<![_\w])_\w+", body)) | set(self.params))
+        return isl.Set("[" + ", ".join(names) + "] -> { : " + body + " }", context=_ctx)
 
     def _r(self, a: Affine) -> str:
         return a.render(_isl_name)

@@ -435,8 +435,14 @@ def emit_nest(src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, gua
     return text.replace("\n", src.newline) if src.newline != "\n" else text
 
 
+def _comment_safe(text: str) -> str:
+    """Text that cannot end (or open) the C comment it is placed in."""
+    return text.replace("*/", "*\\/").replace("/*", "/\\*")
+
+
 def guard_comment(what: str, constrained: list[str], assumptions: str, command: str) -> str:
-    return render("guard.c.j2", what=what, constrained=constrained, assumptions=assumptions, command=command)
+    return render("guard.c.j2", what=_comment_safe(what), constrained=[_comment_safe(c) for c in constrained],
+                  assumptions=_comment_safe(assumptions), command=_comment_safe(command))
 
 
 GUARD_MARK = re.compile(r"/\*\s*looptile:")

@@ -17,7 +17,7 @@ from .frontend import LoopSite, TranslationUnit
 from .headers import extract_loop
 from .model import Loop, Nest
 from .scope import Symbol, visible_at_loops
-from .source import Token, tokenize
+from .source import tokenize
 
 
 def _scope_of(tu: TranslationUnit, site: LoopSite) -> tuple[TypeTable, dict[str, Symbol]]:

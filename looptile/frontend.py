@@ -53,6 +53,7 @@ class TranslationUnit:
     identifiers: set[str]
     altered: frozenset[int] = frozenset()  # lines the header flags change (see altered_lines)
     cache: dict = field(default_factory=dict)  # per-unit memo of later stages (types, scopes)
+    pre_lines: dict[int, list[str]] = field(default_factory=dict)  # preprocessed text of each original line
 
     def loops(self) -> list[LoopSite]:
         return [s for f in self.functions for s in f.loops]
@@ -142,7 +143,11 @@ def load(src: SourceFile, flags: CompileFlags) -> TranslationUnit:
     functions = _functions(ast, main, tokens, src)
     idents = {t.text for t in all_tokens if t.kind == "id"}
     idents |= set(re.findall(r"[A-Za-z_]\w*", pre.text))
-    return TranslationUnit(src, flags, ast, macros, tokens, all_tokens, functions, idents, altered)
+    pre_lines: dict[int, list[str]] = {}
+    for ln, text in main_file_lines(pre.text, main):
+        pre_lines.setdefault(ln, []).append(text)
+    return TranslationUnit(src, flags, ast, macros, tokens, all_tokens, functions, idents, altered,
+                           pre_lines=pre_lines)
 
 
 class _ForCollector(c_ast.NodeVisitor):
