@@ -159,15 +159,20 @@ def _command_text(path: str, nest: str, sizes: str | None, order: str | None, re
 def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: str, as_diff: bool,
          output: str | None, in_place: bool, force: bool, **kw) -> None:
     """Strip-mine a band of loops and move the tile loops outward, if the analysis proves it legal."""
-    if sum([as_diff, bool(output), in_place]) > 1:
-        raise UsageError("choose one of --diff, -o OUT and --in-place")
-    req = TileRequest(_parse_sizes(sizes), tuple(x.strip() for x in order.split(",")) if order else None,
-                      remainder or "split")
-    opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), force,
-                                _command_text(file, nest, sizes, order, remainder or "split", kw),
-                                split_fallback=remainder is None)
-    tu = pipeline.load(file, _flags(file, kw))
-    outcome = pipeline.tile(tu, nest, req, opts)
+    try:
+        if sum([as_diff, bool(output), in_place]) > 1:
+            raise UsageError("choose one of --diff, -o OUT and --in-place")
+        req = TileRequest(_parse_sizes(sizes), tuple(x.strip() for x in order.split(",")) if order else None,
+                          remainder or "split")
+        opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), force,
+                                    _command_text(file, nest, sizes, order, remainder or "split", kw),
+                                    split_fallback=remainder is None)
+        tu = pipeline.load(file, _flags(file, kw))
+        outcome = pipeline.tile(tu, nest, req, opts)
+    except LooptileError as exc:
+        if exc.path is None:  # a usage error about this file's request: say which file
+            exc.path = file
+        raise
     for note in outcome.notes:
         click.echo(f"{file}:{outcome.nest.line}:{outcome.nest.col}: note: {note}", err=True)
     if as_diff:

@@ -134,15 +134,24 @@ def analyse(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str],
     return nest, analysis
 
 
-def _check_request_side(tu: TranslationUnit, nest: Nest, plan: TilePlan, opts: TileOptions) -> None:
+def _check_not_rewritten(tu: TranslationUnit, site: LoopSite, opts: TileOptions) -> None:
+    """A nest right after looptile's guard comment was rewritten before: not again unless --force."""
+    if opts.force or site.token_index is None:
+        return
     src = tu.source
-    before = src.text[: nest.start].rstrip()
+    start = tu.tokens[site.token_index].start
+    before = src.text[:start].rstrip()
     if before.endswith("*/"):
         opening = before.rfind("/*")
-        if opening >= 0 and GUARD_MARK.match(before[opening:]) and not opts.force:
+        if opening >= 0 and GUARD_MARK.match(before[opening:]):
+            line, col = src.line_col(start)
             raise Refusal("this nest already carries a looptile guard comment (it was rewritten before); "
-                          "rewrite the original nest, or pass --force", path=nest.path, line=nest.line,
-                          column=nest.col, source_line=src.line_text(nest.line))
+                          "rewrite the original nest, or pass --force", path=src.path, line=line,
+                          column=col, source_line=src.line_text(line))
+
+
+def _check_request_side(tu: TranslationUnit, nest: Nest, plan: TilePlan, opts: TileOptions) -> None:
+    src = tu.source
     for it in nest.outer_declared:
         off = extract.live_after(tu, nest, it)
         if off is not None:
@@ -297,6 +306,7 @@ def _macro_guard(nest: Nest, src: SourceFile) -> str:
 def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> TileOutcome:
     src = tu.source
     site = select(tu, sel)
+    _check_not_rewritten(tu, site, opts)
     nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions)
     plan = plan_tiling(nest, req, tu.identifiers, _hull_fn(analysis), _scan_fn(analysis))
     _check_request_side(tu, nest, plan, opts)
