@@ -19,6 +19,13 @@ from .scope import Symbol
 from .source import Token, tokenize
 
 
+class AboveMax(Affine):
+    """An obligation against unsigned wrap-around above the type's maximum.
+
+    Only bounds need it: a subscript that large is outside every object, which is
+    undefined behaviour the original program already has."""
+
+
 class NotAffine(Exception):
     def __init__(self, reason: str, node: c_ast.Node | None = None):
         super().__init__(reason)
@@ -152,17 +159,22 @@ def int_affine(ctx: Ctx, node: c_ast.Node) -> tuple[Affine, CType, list[Affine]]
             for v, tv in ((a, ta), (b, tb)):
                 if tv.signed and not (v.is_constant() and v.const >= 0):
                     obl.append(v)
-        if node.op == "+":
-            return a + b, t, obl
         if node.op == "-":
+            value = a - b
             if t.is_unsigned:
-                obl.append(a - b)
-            return a - b, t, obl
-        if a.is_constant():
-            return b.scale(a.const), t, obl
-        if b.is_constant():
-            return a.scale(b.const), t, obl
-        raise NotAffine("the product of two variables is not affine", node)
+                obl.append(value)  # no wrap-around below zero
+        elif node.op == "+":
+            value = a + b
+        elif a.is_constant():
+            value = b.scale(a.const)
+        elif b.is_constant():
+            value = a.scale(b.const)
+        else:
+            raise NotAffine("the product of two variables is not affine", node)
+        if t.is_unsigned and node.op != "-" and not value.is_constant():
+            above = Affine(const=2 ** t.bits - 1) - value  # no wrap-around above the maximum
+            obl.append(AboveMax(above.terms, above.const))
+        return value, t, obl
     if isinstance(node, c_ast.Cast):
         inner, ti, obl = int_affine(ctx, node.expr)
         t = ctx.types.of(node.to_type.type)

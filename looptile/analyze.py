@@ -137,7 +137,7 @@ def text_table(path: str, reports: list[NestReport]) -> str:
     lines = [f"{path}:"]
     for row in rows:
         lines.append("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip())
-    notes = [r.reason for r in reports if r.reason]
+    notes = list(dict.fromkeys(r.reason for r in reports if r.reason))  # a nest inside another repeats it
     if notes:
         lines.append("  not analysable:")
         lines += ["    " + n for n in notes]

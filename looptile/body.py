@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from pycparser import c_ast
 
-from .affine import Ctx, NotAffine, column_on_line, int_affine, outer_iterators
+from .affine import AboveMax, Ctx, NotAffine, column_on_line, int_affine, outer_iterators
 from .ctype import CType
 from .headers import extract_loop
 from .model import Access, Affine, ArrayInfo, Obligation, Statement
@@ -206,7 +206,9 @@ class BodyWalker:
             line = s.coord.line if s.coord else ctx.site.line
             col = column_on_line(ctx.tu, line, node) or 1
             for o in obl:
-                ctx.obligations.append(Obligation(o, tuple(ctx.iterators), line, col, f"a subscript of '{name}'"))
+                if not isinstance(o, AboveMax):
+                    ctx.obligations.append(Obligation(o, tuple(ctx.iterators), line, col,
+                                                      f"a subscript of '{name}'"))
             affs.append(a)
         if info.local:
             affs = [Affine.symbol(i) for i in ctx.iterators[: info.ndims - len(affs)]] + affs

@@ -81,9 +81,10 @@ class NestAnalysis:
         self.params = [_isl_name(p.name) for p in nest.params]
         self.param_text = {_isl_name(p.name): p.text for p in nest.params}
         ctx_parts = [c for c in nest.context]
-        for p in nest.params:
-            if p.ctype.is_unsigned:
-                ctx_parts.append(f"{p.name} >= 0")
+        for p in nest.params:  # a parameter holds a value of its C type
+            if p.ctype.is_int and p.kind != "macro":
+                lo, hi = _type_range(p.ctype.bits, p.ctype.signed)
+                ctx_parts.append(f"{lo} <= {p.name} <= {hi}")
         # A macro whose value the body's subscripts used (guarded by #if in the output) has that
         # value in the bounds too.
         names = {p.name for p in nest.params}
@@ -319,12 +320,11 @@ class NestAnalysis:
         inst_b = Instance(dst, s_dst.line, tuple(zip(s_dst.loops, b)))
         env = dict(zip(s_src.loops, a)) | {_from_isl(n): v for n, v in params}
         elem = self._element(s_src, key, env, kind)
-        used = {n for n, _ in params if self._param_matters(n, m)}
-        shown = tuple((self.param_text.get(n, _from_isl(n)), v) for n, v in params if n in used)
+        # The nest's own parameters in their order of first use, then any from the context.
+        order = {n: k for k, n in enumerate(self.params)}
+        ranked = sorted(params, key=lambda nv: (order.get(nv[0], len(order)), nv[0]))
+        shown = tuple((self.param_text.get(n, _from_isl(n)), v) for n, v in ranked)
         return Witness(kind, inst_a, inst_b, elem, kind != "anti", kind != "flow", shown)
-
-    def _param_matters(self, name: str, m: isl.Map) -> bool:
-        return True
 
     def _element(self, s: Statement, key: str, env: dict[str, int], kind: str) -> str:
         want_write = kind != "anti"

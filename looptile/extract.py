@@ -109,11 +109,7 @@ def _subscript_macros(tu: TranslationUnit, innermost: Loop) -> list[tuple[str, s
 
 def _check_pragma_on(ctx: Ctx, outer: Loop) -> None:
     """A pragma right before the nest applies to its outermost loop; a rewrite would move it."""
-    prev = None
-    for t in reversed(ctx.tu.all_between(0, outer.for_offset)):
-        if t.kind != "comment":
-            prev = t
-            break
+    prev = ctx.tu.token_before(outer.for_offset, skip=("comment",))
     if prev is not None and prev.kind == "pp" and re.match(r"#\s*pragma\b", prev.text):
         name = " ".join(prev.text.split())
         raise ctx.refuse(f"'{name}' applies to this loop nest; the rewrite would attach it to a different loop, "

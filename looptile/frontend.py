@@ -67,6 +67,15 @@ class TranslationUnit:
     def code_between(self, start: int, end: int) -> list[Token]:
         return self.tokens[self.code_index(start):self.code_index(end)]
 
+    def token_before(self, offset: int, skip: tuple[str, ...] = ()) -> Token | None:
+        """The last token (comments and preprocessor lines included) ending before ``offset``."""
+        if "all_starts" not in self.cache:
+            self.cache["all_starts"] = [t.start for t in self.all_tokens]
+        k = bisect.bisect_left(self.cache["all_starts"], offset) - 1
+        while k >= 0 and self.all_tokens[k].kind in skip:
+            k -= 1
+        return self.all_tokens[k] if k >= 0 else None
+
     def all_between(self, start: int, end: int) -> list[Token]:
         """Tokens, comments and preprocessor lines included, starting in [start, end)."""
         if "all_starts" not in self.cache:

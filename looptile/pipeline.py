@@ -128,7 +128,7 @@ def analyse(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str],
     nest = extract.build_nest(tu, site, assume_pure)
     analysis = NestAnalysis(nest, assumptions)
     for o in analysis.failing_obligations():
-        raise Refusal(f"{o.what} is computed in unsigned arithmetic and can wrap around below zero, so C does not "
+        raise Refusal(f"{o.what} is computed in unsigned arithmetic and can wrap around, so C does not "
                       "compute what the analysis would assume; rewrite the bound or add --assume",
                       path=nest.path, line=o.line, column=o.col, source_line=tu.source.line_text(o.line))
     return nest, analysis

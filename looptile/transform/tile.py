@@ -197,9 +197,6 @@ def _scan_slot(nest: Nest, slot: Slot, scan: ScanFn | None) -> Slot:
     except ValueError as exc:
         raise Refusal(f"after the reordering, the bounds of loop '{slot.iterator}' are not a max/min of affine "
                       f"expressions ({exc})", **where) from None
-    if lp.ctype.is_unsigned and any(c < 0 or x.const < 0 for part in bounds for x in part for _, c in x.terms):
-        raise Refusal(f"after the reordering, the bounds of the unsigned loop '{slot.iterator}' could wrap around",
-                      **where)
     return Slot(slot.kind, slot.iterator, slot.name, slot.size, slot.hull, slot.defined, bounds)
 
 
@@ -216,11 +213,6 @@ def _hull_slot(nest: Nest, slot: Slot, hull: HullFn | None) -> Slot:
     except ValueError as exc:
         raise Refusal(f"the tile loop of '{slot.iterator}' needs bounds that are not one affine expression "
                       f"({exc}); tile a rectangular band or choose another order", **where) from None
-    if lp.ctype.is_unsigned and any(c < 0 for x in lo_hi for _, c in x.terms) or \
-            lp.ctype.is_unsigned and any(x.const < 0 for x in lo_hi):
-        raise Refusal(f"the tile loop of the unsigned loop '{slot.iterator}' would need the bounds "
-                      f"{lo_hi[0].render()} .. {lo_hi[1].render()}, which can wrap around in unsigned arithmetic",
-                      **where)
     return Slot(slot.kind, slot.iterator, slot.name, slot.size, lo_hi, slot.defined)
 
 
