@@ -4,9 +4,7 @@ Library code: returns values, raises LooptileError subclasses, never exits.
 """
 from __future__ import annotations
 
-import os
 import re
-import subprocess
 from dataclasses import dataclass, field, replace
 
 from pycparser import c_parser
@@ -338,24 +336,35 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
             + "\n" + src.indent_of(nest.start) + text
         text = text.replace("\n", src.newline) if src.newline != "\n" else text
     new = apply_edits(src.data, [Edit(nest.start, nest.end, text)])
-    check_parses(src, tu.flags, new)
+    check_parses(tu, nest, text, new)
     notes += [f"assumed: {a}" for a in opts.assumptions]
     notes += [f"the rewrite runs only when {c} (no bound can overflow then); the original nest runs otherwise"
               for c in guard_bounds]
     return TileOutcome(src.path, src.data, new, nest, plan, tuple(notes))
 
 
-def check_parses(src: SourceFile, flags: CompileFlags, new: bytes) -> None:
-    """Preprocess and parse the rewritten file; a failure is a looptile bug, never a broken file."""
-    directory = os.path.dirname(os.path.abspath(src.path))
-    argv = toolchain.compiler() + ["-E", f"-I{directory}"] + list(flags.args) + \
-        list(toolchain.PARSEABLE_HEADER_FLAGS) + ["-x", "c", "-"]
-    proc = subprocess.run(argv, input=new, capture_output=True, cwd=flags.directory, timeout=120)
-    if proc.returncode != 0:
-        raise InternalError("the rewritten file does not preprocess; this is a looptile bug, please report it",
-                            path=src.path, details=proc.stderr.decode("latin-1").splitlines()[:10])
+def check_parses(tu: TranslationUnit, nest: Nest, text: str, new: bytes) -> None:
+    """Preprocess the rewritten file and parse the rewritten region again; a failure is a
+    looptile bug (an internal error), never a broken file.
+
+    The region (its preprocessed lines) is parsed inside a dummy function, with the file's
+    typedef names declared, which is much cheaper than parsing every header again; when that
+    does not parse (say, the nest shares a line with other code), the whole file is parsed."""
+    src = tu.source
+    pre = toolchain.preprocess_text(new, src.path, tu.flags)
+    first = nest.line
+    last = first + text.count("\n")
+    region = [t for ln, t in frontend.main_file_lines(pre, "<stdin>") if first <= ln <= last]
+    typedefs = tu.cache["types"].typedefs if "types" in tu.cache else {}
+    prelude = "".join(f"typedef int {name};\n" for name in sorted(typedefs))
     try:
-        c_parser.CParser().parse(proc.stdout.decode("latin-1"), "<rewritten>")
+        c_parser.CParser().parse(prelude + "void looptile_region_check(void) {\n" + "\n".join(region) + "\n}\n",
+                                 "<region>")
+        return
+    except Exception:  # noqa: BLE001 - fall back to the exact, slower check
+        pass
+    try:
+        c_parser.CParser().parse(pre, "<rewritten>")
     except Exception as exc:
-        raise InternalError(f"the rewritten file does not parse ({exc}); this is a looptile bug, please report it",
-                            path=src.path) from exc
+        raise InternalError(f"the rewritten nest does not parse ({exc}); this is a looptile bug, please report it",
+                            path=src.path, line=nest.line, column=nest.col) from exc

@@ -6,7 +6,7 @@ import shlex
 import subprocess
 from dataclasses import dataclass
 
-from .errors import InputError
+from .errors import InputError, InternalError
 from .flags import CompileFlags
 
 # Flags that make glibc and gcc system headers parseable by pycparser (measured with
@@ -75,3 +75,19 @@ def macro_definitions(path: str, flags: CompileFlags) -> dict[str, str]:
             continue
         out[name] = body.strip()
     return out
+
+
+def preprocess_text(data: bytes, path: str, flags: CompileFlags) -> str:
+    """``cc -E`` of rewritten file contents (read from stdin; includes resolve as for ``path``).
+
+    Line markers name the file ``<stdin>``."""
+    directory = os.path.dirname(os.path.abspath(path))
+    argv = compiler() + ["-E", f"-I{directory}"] + list(flags.args) + list(PARSEABLE_HEADER_FLAGS) + ["-x", "c", "-"]
+    try:
+        proc = subprocess.run(argv, input=data, capture_output=True, cwd=flags.directory, timeout=120)
+    except (OSError, subprocess.TimeoutExpired) as exc:
+        raise InputError(f"cannot preprocess the rewritten file ({exc})", path=path) from exc
+    if proc.returncode != 0:
+        raise InternalError("the rewritten file does not preprocess; this is a looptile bug, please report it",
+                            path=path, details=proc.stderr.decode("latin-1").splitlines()[:10])
+    return proc.stdout.decode("latin-1")
