@@ -51,7 +51,7 @@ def select(tu: TranslationUnit, sel: str) -> LoopSite:
     path = tu.source.path
     m = re.fullmatch(r"L(\d+)", sel)
     names = [f.name for f in tu.functions]
-    if m and sel not in names:
+    if m:  # always a line; a function named like L12 is selected as L12:1
         line = int(m.group(1))
         sites = sorted((s for s in tu.loops() if s.line == line), key=lambda s: s.token_index or 0)
         if not sites:

@@ -676,3 +676,33 @@ def test_macro_in_bound_and_subscript(tmp_path):
     build(src, tmp_path / "a9.exe", ["-DNCOLS=9"])
     with pytest.raises(AssertionError, match="looptile rewrote this nest"):
         build(out, tmp_path / "b9.exe", ["-DNCOLS=9"])
+
+
+SIBLINGS = """\
+/* Tidal basin: two resets on one line, and a function whose name looks like a line selector. */
+void reset(int n, double a[n], double b[n]) {
+    for (int i = 0; i < n; i++) a[i] = 0; for (int j = 0; j < n; j++) b[j] = 1;
+}
+void L2(int n, double a[n]) {
+    for (int i = 0; i < n; i++) a[i] = 0;
+}
+"""
+
+
+def test_two_sibling_nests_on_one_line_are_a_usage_error_listing_both(tmp_path):
+    src = write(tmp_path / "siblings.c", SIBLINGS)
+    r = run_cli("tile", src, "--nest", "L3", "--sizes", "4")
+    assert r.exit_code == 2, r.stderr
+    first = r.stderr.split("\n")[0]
+    assert f"{src}:3:5" in first and f"{src}:3:43" in first, first
+
+
+def test_a_function_named_like_a_line_selector_is_selected_as_func_k(tmp_path):
+    src = write(tmp_path / "siblings.c", SIBLINGS)
+    r = run_cli("tile", src, "--nest", "L2:1", "--sizes", "4")
+    assert r.exit_code == 0, r.stderr
+    out = r.stdout_bytes.decode()
+    assert out.count("looptile: tiled (i) by (4)") == 1
+    assert out.index("looptile: tiled") > out.index("void L2(")  # the nest of L2, not of line 2
+    r = run_cli("tile", src, "--nest", "L2", "--sizes", "4")  # line 2 has no for loop
+    assert r.exit_code == 2, r.stderr
