@@ -163,8 +163,8 @@ def _enclosing_context(tu: TranslationUnit, site: LoopSite, assume_pure: frozens
             lp = extract_loop(ctx, anc.node, anc.token_index)
         except Refusal:
             continue
-        if set(ctx.params) - {p for p in ctx.params if not p.startswith("$")} or lp.step != 1:
-            continue
+        if any(p.kind == "opaque" for p in ctx.params.values()) or lp.step != 1:
+            continue  # only plain affine bounds say something useful about the parameters
         x = lp.iterator
         lo, hi = lp.start.value.render(), lp.limit.value.render()
         if lp.direction > 0:

@@ -4,7 +4,7 @@ from __future__ import annotations
 from pycparser import c_ast
 
 from .affine import Ctx, expr_type, loop_bound, opaque_param
-from .ctype import common_int_type, literal_value
+from .ctype import CType, common_int_type, literal_value
 from .model import Affine, Bound, Loop, Obligation
 from .source import Token, match_close, statement_end
 
@@ -82,19 +82,41 @@ def extract_loop(ctx: Ctx, node: c_ast.For, idx: int | None) -> Loop:
     if idx is None:
         raise ctx.refuse("this for loop cannot be matched to the source text (it comes from a macro)", node)
     toks = ctx.tu.tokens
-    src = ctx.tu.source
     (init_t, cond_t, _), close = _split_header(ctx, idx)
-    if isinstance(node.init, c_ast.DeclList) and len(node.init.decls) == 1 and node.init.decls[0].init is not None:
-        d = node.init.decls[0]
+    it, ctype, in_for, start_node = _iterator(ctx, node, init_t)
+    step, direction = _step(ctx, node.next, it)
+    op, limit_node, limit_t = _condition(ctx, node.cond or node, cond_t, it, ctype, step, direction)
+    eq = next((k for k, t in enumerate(init_t) if t.text == "="), None)
+    if eq is None:
+        raise ctx.refuse(f"cannot find the initial value of '{it}' in the source", node)
+    outer = tuple(ctx.iterators)
+    ctx.loop_types[it] = ctype
+    start = loop_bound(ctx, start_node, init_t[eq + 1:], None, "initial value", outer)
+    limit = _compared_as(ctx, node, it, ctype, limit_node,
+                         loop_bound(ctx, limit_node, limit_t, None, "bound", outer), outer)
+    body_idx = close + 1
+    body_last = statement_end(toks, body_idx)
+    if body_last < 0:
+        raise ctx.refuse(f"cannot find the end of the body of loop '{it}' in the source", node)
+    line, col = ctx.tu.source.line_col(toks[idx].start)
+    return Loop(it, ctype, in_for, start, limit, op, step, direction, line, col,
+                toks[idx].start, toks[close].end, toks[body_idx].start, toks[body_last].end)
+
+
+def _iterator(ctx: Ctx, node: c_ast.For, init_t: list[Token]) -> tuple[str, CType, bool, c_ast.Node]:
+    """The iterator, its type, whether the for declares it, and its initial value's AST."""
+    init = node.init
+    if isinstance(init, c_ast.DeclList) and len(init.decls) == 1 and init.decls[0].init is not None:
+        d = init.decls[0]
         it, ctype, in_for, start_node = d.name, ctx.types.of(d.type, _type_spelling(init_t, d.name)), True, d.init
-    elif isinstance(node.init, c_ast.Assignment) and node.init.op == "=" and isinstance(node.init.lvalue, c_ast.ID):
-        it = node.init.lvalue.name
+    elif isinstance(init, c_ast.Assignment) and init.op == "=" and isinstance(init.lvalue, c_ast.ID):
+        it = init.lvalue.name
         sym = ctx.scope.get(it)
         if sym is None:
-            raise ctx.refuse(f"the iterator '{it}' is not declared", node.init)
-        ctype, in_for, start_node = sym.ctype, False, node.init.rvalue
+            raise ctx.refuse(f"the iterator '{it}' is not declared", init)
+        ctype, in_for, start_node = sym.ctype, False, init.rvalue
         if sym.kind != "local" or "static" in sym.storage:
-            raise ctx.refuse(f"the iterator '{it}' is not a local variable of the function", node.init)
+            raise ctx.refuse(f"the iterator '{it}' is not a local variable of the function", init)
     else:
         raise ctx.refuse("the loop must initialise exactly one iterator (int i = ... or i = ...)", node)
     if not ctype.is_int:
@@ -103,10 +125,14 @@ def extract_loop(ctx: Ctx, node: c_ast.For, idx: int | None) -> Loop:
         raise ctx.refuse(f"the iterator '{it}' is volatile", node)
     if ctype.bits < 32:
         raise ctx.refuse(f"the iterator '{it}' is narrower than int (it is promoted in arithmetic)", node)
-    step, direction = _step(ctx, node.next, it)
-    cond = node.cond
+    return it, ctype, in_for, start_node
+
+
+def _condition(ctx: Ctx, cond: c_ast.Node, cond_t: list[Token], it: str, ctype: CType, step: int,
+               direction: int) -> tuple[str, c_ast.Node, list[Token]]:
+    """The comparison as ``it OP limit``: the operator, the limit's AST and its original tokens."""
     if not (isinstance(cond, c_ast.BinaryOp) and cond.op in ("<", "<=", ">", ">=", "!=")):
-        raise ctx.refuse(f"the condition of loop '{it}' is not one comparison of '{it}' with a bound", cond or node)
+        raise ctx.refuse(f"the condition of loop '{it}' is not one comparison of '{it}' with a bound", cond)
     flip = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "!=": "!="}
     split = _after_top(cond_t, ("<", "<=", ">", ">=", "!="))
     if split is None:
@@ -125,31 +151,25 @@ def extract_loop(ctx: Ctx, node: c_ast.For, idx: int | None) -> Loop:
     if (direction > 0) != (op in ("<", "<=")):
         raise ctx.refuse(f"loop '{it}' counts {'up' if direction > 0 else 'down'} but its condition is {it} {op} ...",
                          cond)
-    eq = next((k for k, t in enumerate(init_t) if t.text == "="), None)
-    if eq is None:
-        raise ctx.refuse(f"cannot find the initial value of '{it}' in the source", node)
-    outer = tuple(ctx.iterators)
-    ctx.loop_types[it] = ctype
-    start = loop_bound(ctx, start_node, init_t[eq + 1:], None, "initial value", outer)
-    limit = loop_bound(ctx, limit_node, limit_t, None, "bound", outer)
-    cmp_type = common_int_type(ctype, expr_type(ctx, limit_node))
+    return op, limit_node, limit_t
+
+
+def _compared_as(ctx: Ctx, node: c_ast.For, it: str, ctype: CType, limit_node: c_ast.Node, limit: Bound,
+                 outer: tuple[str, ...]) -> Bound:
+    """A comparison in unsigned arithmetic with a signed side is exact only when that side is >= 0."""
+    limit_type = expr_type(ctx, limit_node)
+    cmp_type = common_int_type(ctype, limit_type)
     if cmp_type.is_unsigned and not ctype.is_unsigned:
         ctx.obligations.append(Obligation(Affine.symbol(it), outer + (it,), node.coord.line, 1,
                                           f"'{it}' compared as an unsigned value"))
-    elif cmp_type.is_unsigned and not expr_type(ctx, limit_node).is_unsigned:
+    elif cmp_type.is_unsigned and not limit_type.is_unsigned:
         if limit.value.names() & set(ctx.iterators):
             ctx.obligations.append(Obligation(limit.value, outer, node.coord.line, 1,
                                               f"the bound {limit.text} converted to unsigned"))
         else:
             v, _, _ = opaque_param(ctx, limit_node, limit.text, None, cmp_type)
-            limit = Bound(v, limit.text, limit.start, limit.end)
-    body_idx = close + 1
-    body_last = statement_end(toks, body_idx)
-    if body_last < 0:
-        raise ctx.refuse(f"cannot find the end of the body of loop '{it}' in the source", node)
-    line, col = src.line_col(toks[idx].start)
-    return Loop(it, ctype, in_for, start, limit, op, step, direction, line, col,
-                toks[idx].start, toks[close].end, toks[body_idx].start, toks[body_last].end)
+            return Bound(v, limit.text, limit.start, limit.end)
+    return limit
 
 
 def _type_spelling(init_t: list[Token], name: str) -> str:

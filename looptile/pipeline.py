@@ -103,8 +103,6 @@ def describe_witness(what: str, w: Witness, nest: Nest) -> tuple[str, list[str]]
     if arr is not None and arr.ndims == 0 and not arr.local and arr.elem.kind == "float":
         details.append(f"'{arr.name}' is a floating-point accumulation: reordering it would change the rounding "
                        "of the result")
-    elif arr is not None and arr.local and arr.ndims == len(nest.perfect) and arr.elem.kind == "float":
-        pass
     return head, details
 
 
