@@ -204,10 +204,10 @@ class Phases:
         self.originals.append((pipeline, "check_parses", original))
         timed = self.wrap("reparse", original)
 
-        def check_parses(src, flags, new):
-            self.captured = new
+        def check_parses(*args):
+            self.captured = args[-1]  # the rewritten bytes are the last argument
             if not self.skip_reparse:
-                timed(src, flags, new)
+                timed(*args)
         pipeline.check_parses = check_parses
 
     def uninstall(self) -> None:

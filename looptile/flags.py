@@ -33,8 +33,6 @@ class CompileFlags:
     def plus(self, other: CompileFlags) -> CompileFlags:
         return CompileFlags(self.args + other.args, self.directory or other.directory)
 
-    def as_command_text(self) -> str:
-        return " ".join(shlex.quote(a) for a in self.args)
 
 
 def from_options(

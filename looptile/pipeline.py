@@ -160,22 +160,15 @@ def _check_request_side(tu: TranslationUnit, nest: Nest, plan: TilePlan, opts: T
                       "start its own line", path=nest.path, line=nest.line, column=nest.col)
 
 
-def _hull_fn(analysis: NestAnalysis):
-    def hull(iterator: str, kept: tuple[str, ...]):
+def _from_analysis(analysis: NestAnalysis, compute):
+    """A bounds callback for the planner; bounds isl cannot give as affine expressions become
+    ValueError, which the planner turns into a refusal."""
+    def call(iterator: str, kept: tuple[str, ...]):
         try:
-            return deps.band_hull(analysis, iterator, kept)
+            return compute(analysis, iterator, kept)
         except deps.BoundsNotAffine as exc:
             raise ValueError(str(exc)) from None
-    return hull
-
-
-def _scan_fn(analysis: NestAnalysis):
-    def scan(iterator: str, kept: tuple[str, ...]):
-        try:
-            return deps.scan_bounds(analysis, iterator, kept)
-        except deps.BoundsNotAffine as exc:
-            raise ValueError(str(exc)) from None
-    return scan
+    return call
 
 
 class SplitImpossible(Exception):
@@ -304,7 +297,8 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
     site = select(tu, sel)
     _check_not_rewritten(tu, site, opts)
     nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions)
-    plan = plan_tiling(nest, req, tu.identifiers, _hull_fn(analysis), _scan_fn(analysis))
+    plan = plan_tiling(nest, req, tu.identifiers, _from_analysis(analysis, deps.band_hull),
+                       _from_analysis(analysis, deps.scan_bounds))
     _check_request_side(tu, nest, plan, opts)
     legality: Legality = analysis.check(list(plan.schedule))
     if not legality.legal:

@@ -224,7 +224,3 @@ def _dim(nest: Nest, slot: Slot) -> ScheduleDim:
     if slot.hull is not None:
         origin = slot.hull[0] if lp.direction > 0 else slot.hull[1]
     return ScheduleDim(slot.iterator, block=lp.step * (slot.size or 1), origin=origin)
-
-
-def origin_of(nest: Nest, iterator: str) -> Affine:
-    return nest.loop(iterator).start.value
