@@ -17,10 +17,11 @@ import click
 
 from . import analyze as analyze_mod
 from . import pipeline
-from .errors import EXIT_INTERNAL, LooptileError, UsageError
+from .errors import EXIT_INTERNAL, InputError, LooptileError, UsageError
 from .flags import CompileFlags, from_compile_db, from_options
 from .splice import unified_diff, write_atomic
 from .transform.tile import TileRequest
+from .verify import VerifyOptions, verify
 
 
 def frontend_options(f):
@@ -143,6 +144,91 @@ def _command_text(path: str, nest: str, sizes: str | None, order: str | None, re
     return " ".join(shlex.quote(p) for p in parts)
 
 
+def check_options(f):
+    """How the harness of verify (and tile --verify) runs the kernel."""
+    opts = [
+        click.option("--params", "params", multiple=True, metavar="n=37,m=20",
+                     help="One set of integer parameter values (repeatable); unset loop bounds sweep sizes."),
+        click.option("--shape", "shapes", multiple=True, metavar="A=n*m",
+                     help="Element count of a pointer parameter, as a C expression of the parameters."),
+        click.option("--seed", type=int, default=12345, show_default=True, help="Seed of the input values."),
+        click.option("--timeout", type=float, default=30.0, show_default=True, help="Seconds per run."),
+    ]
+    for o in reversed(opts):
+        f = o(f)
+    return f
+
+
+def _verify_options(kw: dict, tile_sizes: tuple[int, ...]) -> VerifyOptions:
+    sets = []
+    for spec in kw["params"]:
+        values = {}
+        for item in spec.split(","):
+            name, eq, value = item.strip().partition("=")
+            try:
+                values[name.strip()] = int(value, 0)
+            except ValueError:
+                raise UsageError(f"--params item '{item}' is not NAME=INTEGER") from None
+            if not eq or not name.strip():
+                raise UsageError(f"--params item '{item}' is not NAME=INTEGER")
+        sets.append(values)
+    shapes = {}
+    for item in kw["shapes"]:
+        name, eq, expr = item.partition("=")
+        if not eq or not name.strip() or not expr.strip():
+            raise UsageError(f"--shape '{item}' is not NAME=EXPRESSION (e.g. A=n*m)")
+        shapes[name.strip()] = expr.strip()
+    return VerifyOptions(tuple(sets), shapes, kw["seed"], kw["timeout"], tile_sizes)
+
+
+def _print_report(report) -> None:
+    for line in report.lines:
+        click.echo(line)
+
+
+@main.command(name="verify")
+@click.argument("file")
+@click.option("--nest", "nest", metavar="SEL", help="Check looptile's rewrite of this nest (L<line>, FUNC, FUNC:K).")
+@click.option("--sizes", metavar="SPEC", help="Tile sizes, as for tile.")
+@click.option("--order", metavar="LIST", help="Loop order, as for tile.")
+@click.option("--remainder", type=click.Choice(["split", "clamp"]), default=None, help="As for tile.")
+@click.option("--against", metavar="OTHER.c", help="Check a version rewritten by hand against FILE.")
+@click.option("--func", "func", metavar="NAME", help="With --against: the kernel function to compare.")
+@check_options
+@frontend_options
+@reporting
+def verify_cmd(file: str, nest: str | None, sizes: str | None, order: str | None, remainder: str | None,
+               against: str | None, func: str | None, **kw) -> None:
+    """Compile and run the original and the rewritten kernel on the same inputs; compare bit for bit."""
+    try:
+        if bool(against) == bool(nest):
+            raise UsageError("give either --nest SEL (check looptile's rewrite) or --against OTHER.c --func NAME")
+        tu = pipeline.load(file, _flags(file, kw))
+        if against:
+            if not func:
+                raise UsageError("--against needs --func NAME, the kernel function to compare")
+            try:
+                candidate = open(against, "rb").read()
+            except OSError as exc:
+                raise InputError(f"cannot read the file; {exc.strerror}", path=against) from exc
+            report = verify(tu, candidate, func, _verify_options(kw, ()), candidate_name="hand-rewritten")
+        else:
+            req = TileRequest(_parse_sizes(sizes), tuple(x.strip() for x in order.split(",")) if order else None,
+                              remainder or "split")
+            opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), False,
+                                        _command_text(file, nest, sizes, order, remainder or "split", kw),
+                                        split_fallback=remainder is None)
+            outcome = pipeline.tile(tu, nest, req, opts)
+            report = verify(tu, outcome.new, outcome.nest.function,
+                            _verify_options(kw, tuple(s for _, s in req.sizes)))
+    except LooptileError as exc:
+        if exc.path is None:
+            exc.path = file
+        raise
+    _print_report(report)
+    sys.exit(report.status)
+
+
 @main.command()
 @click.argument("file")
 @click.option("--nest", "nest", required=True, metavar="SEL", help="L<line>, FUNC or FUNC:K.")
@@ -154,10 +240,13 @@ def _command_text(path: str, nest: str, sizes: str | None, order: str | None, re
 @click.option("-o", "--output", metavar="OUT", help="Write the result to OUT.")
 @click.option("--in-place", is_flag=True, help="Replace FILE (atomically, mode kept).")
 @click.option("--force", is_flag=True, help="Tile a nest that looptile already rewrote.")
+@click.option("--verify", "check", is_flag=True,
+              help="Compile and run both versions first (as the verify command); write nothing if they differ.")
+@check_options
 @frontend_options
 @reporting
 def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: str, as_diff: bool,
-         output: str | None, in_place: bool, force: bool, **kw) -> None:
+         output: str | None, in_place: bool, force: bool, check: bool, **kw) -> None:
     """Strip-mine a band of loops and move the tile loops outward, if the analysis proves it legal."""
     try:
         if sum([as_diff, bool(output), in_place]) > 1:
@@ -169,10 +258,17 @@ def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: 
                                     split_fallback=remainder is None)
         tu = pipeline.load(file, _flags(file, kw))
         outcome = pipeline.tile(tu, nest, req, opts)
+        report = verify(tu, outcome.new, outcome.nest.function,
+                        _verify_options(kw, tuple(s for _, s in req.sizes))) if check else None
     except LooptileError as exc:
         if exc.path is None:  # a usage error about this file's request: say which file
             exc.path = file
         raise
+    if report is not None:
+        for line in report.lines:
+            click.echo(line, err=True)
+        if report.status != 0:
+            sys.exit(report.status)
     for note in outcome.notes:
         click.echo(f"{file}:{outcome.nest.line}:{outcome.nest.col}: note: {note}", err=True)
     if as_diff:

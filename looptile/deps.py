@@ -601,3 +601,35 @@ def overflow_guard(analysis: NestAnalysis, tile_of: dict[str, str],
         else:
             out.append((name, "<=", a.const // (-c)))
     return out
+
+
+def access_extent(analysis: NestAnalysis, array: str, values: dict[str, int]) -> list[tuple[int, int]] | None:
+    """Smallest and largest index of each dimension of ``array`` that the nest touches when the
+    parameters have ``values`` (C names; parameters without a value range over all their values).
+    None when the nest does not touch the array for these values."""
+    um = None
+    for write in (False, True):
+        m = analysis._union(write, array)
+        if m is not None:
+            um = m if um is None else um.union(m)
+    if um is None:
+        return None
+    sets: list[isl.Set] = []
+    um.range().foreach_set(sets.append)
+    if not sets:
+        return None
+    s = sets[0]
+    for k in range(s.dim(isl.dim_type.param) - 1, -1, -1):
+        name = _from_isl(s.get_dim_name(isl.dim_type.param, k))
+        if name in values:
+            s = s.fix_val(isl.dim_type.param, k, isl.Val(values[name]))
+    s = s.project_out(isl.dim_type.param, 0, s.dim(isl.dim_type.param))
+    if s.is_empty():
+        return None
+    out = []
+    for k in range(s.dim(isl.dim_type.set)):
+        lo, hi = s.dim_min(k), s.dim_max(k)
+        if not (_is_const(lo) and _is_const(hi)):
+            raise BoundsNotAffine("the extent of an array is unbounded")
+        out.append((_pw_const(lo), _pw_const(hi)))
+    return out

@@ -91,3 +91,54 @@ def preprocess_text(data: bytes, path: str, flags: CompileFlags) -> str:
         raise InternalError("the rewritten file does not preprocess; this is a looptile bug, please report it",
                             path=path, details=proc.stderr.decode("latin-1").splitlines()[:10])
     return proc.stdout.decode("latin-1")
+
+
+# Checking builds: contraction off (it could differ between two versions), sanitizers on and
+# fatal.  Appended after the user's CFLAGS so that nothing there can switch them off.
+CHECK_FLAGS: tuple[str, ...] = ("-O1", "-ffp-contract=off", "-fsanitize=address,undefined",
+                                "-fno-sanitize-recover=undefined")
+
+
+@dataclass(frozen=True)
+class Build:
+    ok: bool
+    exe: str
+    messages: str
+
+
+@dataclass(frozen=True)
+class Run:
+    returncode: int | None  # None: timed out
+    stdout: bytes
+    stderr: str
+
+    @property
+    def sanitizer_report(self) -> str | None:
+        for line in self.stderr.splitlines():
+            if "runtime error:" in line or "AddressSanitizer" in line or "LeakSanitizer" in line:
+                return line.strip()
+        return None
+
+
+def build(source: str, exe: str, flags: CompileFlags, include_dir: str) -> Build:
+    """Compile a harness with the user's CFLAGS and flags, then the checking flags."""
+    argv = compiler() + shlex.split(os.environ.get("CFLAGS", "")) + list(flags.args) + \
+        [f"-I{include_dir}", source, "-o", exe] + list(CHECK_FLAGS) + ["-lm"]
+    try:
+        proc = subprocess.run(argv, capture_output=True, cwd=flags.directory, timeout=300)
+    except FileNotFoundError:
+        return Build(False, exe, f"cannot run the C compiler '{argv[0]}'; set CC to a C compiler")
+    except subprocess.TimeoutExpired:
+        return Build(False, exe, "the compiler timed out after 300 s")
+    return Build(proc.returncode == 0, exe, proc.stderr.decode("latin-1"))
+
+
+def run(exe: str, args: list[str], timeout: float) -> Run:
+    env = dict(os.environ)
+    env.setdefault("ASAN_OPTIONS", "detect_leaks=0")  # needs ptrace, which containers often forbid
+    env.setdefault("UBSAN_OPTIONS", "print_stacktrace=0")
+    try:
+        proc = subprocess.run([exe] + args, capture_output=True, timeout=timeout, env=env)
+    except subprocess.TimeoutExpired as exc:
+        return Run(None, exc.stdout or b"", (exc.stderr or b"").decode("latin-1"))
+    return Run(proc.returncode, proc.stdout, proc.stderr.decode("latin-1"))
