@@ -42,6 +42,7 @@ class KernelSpec:
     bound_params: tuple[str, ...]  # integer parameters used in loop headers
     dim_params: tuple[str, ...]  # integer parameters used only in array dimensions
     other_ints: tuple[str, ...]  # integer parameters used otherwise (need --params)
+    return_type: CType | None = None
 
     def arrays(self) -> tuple[ParamSpec, ...]:
         return tuple(p for p in self.params if p.kind == "array")
@@ -128,7 +129,8 @@ def kernel_spec(tu: TranslationUnit, function: str) -> KernelSpec:
         returns = rt.spelling
     elif rt is None or rt.kind != "void":
         raise UsageError(f"function '{function}' returns a type the harness cannot compare", path=tu.source.path)
-    return KernelSpec(function, tuple(params), returns, _globals_used(tu, types, func.node), bound, dims_only, others)
+    return KernelSpec(function, tuple(params), returns, _globals_used(tu, types, func.node), bound, dims_only, others,
+                      rt if returns else None)
 
 
 def _walk_arrays(node: c_ast.Node) -> list[c_ast.ArrayDecl]:

@@ -180,6 +180,8 @@ def _kinds(spec: KernelSpec) -> dict[str, str]:
         return "float" if t.kind == "float" else ("int" if t.signed else "uint")
     out = {p.name: kind(p.ctype) for p in spec.params if p.kind == "array"}
     out |= {g.name: kind(g.elem) for g in spec.globals}
+    if spec.return_type is not None:
+        out["return"] = kind(spec.return_type)
     return out
 
 
