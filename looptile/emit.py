@@ -54,6 +54,13 @@ def paren(text: str) -> str:
     return text
 
 
+def literal(value: int, lp: Loop) -> str:
+    """A tile span or distance as a C constant of the loop's type (suffixed beyond int)."""
+    if value <= 2**31 - 1:
+        return str(value)
+    return f"{value}{'L' if lp.ctype.signed else 'UL'}"
+
+
 def unsigned_of(lp: Loop) -> str:
     return "unsigned long" if lp.ctype.bits == 64 else "unsigned"
 
@@ -203,7 +210,7 @@ class NestEmitter:
 
     def tile_header(self, s: Slot) -> str:
         lp = self.loops[s.iterator]
-        span = lp.step * (s.size or 1)
+        span = literal(lp.step * (s.size or 1), lp)
         if s.hull is not None:
             return self._hull_tile_header(s, lp, span)
         return render("tile_loop.c.j2", decl=self._decl(lp, True), name=s.name, start=lp.start.text, op=lp.op,
@@ -230,7 +237,7 @@ class NestEmitter:
 
     def point_header(self, s: Slot, tile: str, full: bool) -> str:
         lp = self.loops[s.iterator]
-        span = lp.step * (s.size or 1)
+        span = literal(lp.step * (s.size or 1), lp)
         if s.scan is not None and not full:
             return self.scan_header(s, tile, lp)
         if full:
@@ -269,8 +276,8 @@ class NestEmitter:
         else:
             conds = [f"{s.name} >= {paren(c_affine(lo_, self.nest))}" for lo_ in lowers]
         if tile is not None:
-            conds.append(f"{s.name} - {tile} < {lp.step * (s.size or 1)}" if up
-                         else f"{tile} - {s.name} < {lp.step * (s.size or 1)}")
+            span = literal(lp.step * (s.size or 1), lp)
+            conds.append(f"{s.name} - {tile} < {span}" if up else f"{tile} - {s.name} < {span}")
         decl = self._decl(lp, False)
         return f"for ({decl}{s.name} = {start}; {' && '.join(conds)}; {self._step_text(lp)})"
 
@@ -280,7 +287,8 @@ class NestEmitter:
             if s.kind == "point":
                 lp = self.loops[s.iterator]
                 if s.iterator in split_point(self.nest, self.plan).rect:
-                    parts.append(f"{self._dist(lp, tiles[s.iterator])} >= {self._full(lp, s.size or 1)}")
+                    full = literal(self._full(lp, s.size or 1), lp)
+                    parts.append(f"{self._dist(lp, tiles[s.iterator])} >= {full}")
         signed = self.loops[self.plan.band[0]].ctype.signed
         parts += [c_condition(a, eq, self.nest, signed) for a, eq in self.facts.full_extra]
         return " && ".join(parts)
@@ -377,11 +385,11 @@ class NestEmitter:
         out = self._headers_only(headers, 0)
         depth = len(headers)
         ind = self.base + self.unit * depth
-        span = lp.step * (tile.size or 1)
+        span = literal(lp.step * (tile.size or 1), lp)
         out.append(Line(ind, "{"))
         out.append(Line(ind + self.unit, f"{lp.ctype.spelling} {tile.name};"))
         main = render("main_loop.c.j2", name=tile.name, start=lp.start.text, op=lp.op, limit=self._limit(lp),
-                      dist=self._dist(lp, tile.name), full=self._full(lp, tile.size or 1), span=span,
+                      dist=self._dist(lp, tile.name), full=literal(self._full(lp, tile.size or 1), lp), span=span,
                       sign="+" if lp.direction > 0 else "-")
         fast = [main] + [self.point_header(s, tile.name, True) if s.kind == "point" else self.plain_header(s)
                          for s in rest]

@@ -145,7 +145,13 @@ def load(src: SourceFile, flags: CompileFlags) -> TranslationUnit:
                 f"cannot parse the preprocessed file; {m.group(4)} (looptile reads standard C99/C11)",
                 path=src.path, line=line, column=int(m.group(3)), source_line=src.line_text(line),
             ) from exc
-        raise InputError(f"cannot parse the preprocessed file; {msg}", path=src.path) from exc
+        where = toolchain.syntax_error(src.path, flags)  # pycparser gave no position: ask the compiler
+        if where is not None:
+            line, col, text = where
+            raise InputError(f"cannot parse the file: {text}", path=src.path, line=line, column=col,
+                             source_line=src.line_text(line)) from exc
+        raise InputError(f"cannot parse the preprocessed file ({msg.replace(main + ': ', '')}); the compiler "
+                         "accepts it, so it may use an extension looptile does not read", path=src.path) from exc
     all_tokens = tokenize(src.text)
     tokens = code_tokens(all_tokens)
     macros = toolchain.macro_definitions(src.path, flags)

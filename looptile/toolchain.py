@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import os
+import re
 import shlex
 import subprocess
 from dataclasses import dataclass
@@ -25,6 +26,11 @@ PARSEABLE_HEADER_FLAGS: tuple[str, ...] = (
 )
 
 
+def _c_locale() -> dict[str, str]:
+    """The environment for compiler runs: plain ASCII diagnostics (no typographic quotes)."""
+    return dict(os.environ, LC_ALL="C", LANG="C")
+
+
 def compiler() -> list[str]:
     return shlex.split(os.environ.get("CC", "cc")) or ["cc"]
 
@@ -37,19 +43,49 @@ class Preprocessed:
 
 def _run(argv: list[str], cwd: str | None, path: str, what: str) -> str:
     try:
-        proc = subprocess.run(argv, cwd=cwd, capture_output=True, timeout=120)
+        proc = subprocess.run(argv, cwd=cwd, capture_output=True, timeout=120, env=_c_locale())
     except FileNotFoundError as exc:
         raise InputError(f"cannot run the C compiler '{argv[0]}'; set CC to a C compiler", path=path) from exc
     except subprocess.TimeoutExpired as exc:
         raise InputError(f"{what} timed out after 120 s", path=path) from exc
     if proc.returncode != 0:
         err = proc.stderr.decode("latin-1").strip().splitlines()
+        where = first_error(err, path)
+        if where is not None:
+            line, col, msg = where
+            raise InputError(f"{what} failed: {msg}; fix it or pass the flags the file needs (-I, -D, --compile-db)",
+                             path=path, line=line, column=col, details=err[:20])
         raise InputError(
             f"{what} failed; fix the error below or pass the flags the file needs (-I, -D, --compile-db)",
             path=path,
             details=err[:20],
         )
     return proc.stdout.decode("latin-1")
+
+
+_DIAGNOSTIC = re.compile(r"^(?P<file>.*?):(?P<line>\d+):(?P<col>\d+): (?:fatal )?error: (?P<msg>.*)$")
+
+
+def first_error(lines: list[str], path: str) -> tuple[int, int, str] | None:
+    """Line, column and text of the compiler's first error in ``path`` (from its stderr lines)."""
+    target = os.path.realpath(path)
+    for line in lines:
+        m = _DIAGNOSTIC.match(line)
+        if m and (os.path.realpath(m.group("file")) == target or m.group("file") == path):
+            return int(m.group("line")), int(m.group("col")), m.group("msg")
+    return None
+
+
+def syntax_error(path: str, flags: CompileFlags) -> tuple[int, int, str] | None:
+    """The compiler's own first error in the file (``cc -fsyntax-only``), or None if it accepts it."""
+    argv = compiler() + ["-fsyntax-only"] + list(flags.args) + [os.path.abspath(path)]
+    try:
+        proc = subprocess.run(argv, capture_output=True, cwd=flags.directory, timeout=120, env=_c_locale())
+    except (OSError, subprocess.TimeoutExpired):
+        return None
+    if proc.returncode == 0:
+        return None
+    return first_error(proc.stderr.decode("latin-1").splitlines(), path)
 
 
 def preprocess(path: str, flags: CompileFlags, parseable: bool = True) -> Preprocessed:
@@ -84,7 +120,8 @@ def preprocess_text(data: bytes, path: str, flags: CompileFlags) -> str:
     directory = os.path.dirname(os.path.abspath(path))
     argv = compiler() + ["-E", f"-I{directory}"] + list(flags.args) + list(PARSEABLE_HEADER_FLAGS) + ["-x", "c", "-"]
     try:
-        proc = subprocess.run(argv, input=data, capture_output=True, cwd=flags.directory, timeout=120)
+        proc = subprocess.run(argv, input=data, capture_output=True, cwd=flags.directory, timeout=120,
+                              env=_c_locale())
     except (OSError, subprocess.TimeoutExpired) as exc:
         raise InputError(f"cannot preprocess the rewritten file ({exc})", path=path) from exc
     if proc.returncode != 0:
@@ -125,7 +162,7 @@ def build(source: str, exe: str, flags: CompileFlags, include_dir: str) -> Build
     argv = compiler() + shlex.split(os.environ.get("CFLAGS", "")) + list(flags.args) + \
         [f"-I{include_dir}", source, "-o", exe] + list(CHECK_FLAGS) + ["-lm"]
     try:
-        proc = subprocess.run(argv, capture_output=True, cwd=flags.directory, timeout=300)
+        proc = subprocess.run(argv, capture_output=True, cwd=flags.directory, timeout=300, env=_c_locale())
     except FileNotFoundError:
         return Build(False, exe, f"cannot run the C compiler '{argv[0]}'; set CC to a C compiler")
     except subprocess.TimeoutExpired:

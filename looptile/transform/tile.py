@@ -93,8 +93,13 @@ def _band(nest: Nest, req: TileRequest) -> tuple[tuple[str, ...], tuple[int, ...
         band = tuple(its[k] for k in idx)
     sizes = tuple(dict((n if n is not None else band[k], s) for k, (n, s) in enumerate(req.sizes))[b] for b in band)
     for b, s in zip(band, sizes):
+        lp = nest.loop(b)
+        top = 2 ** (lp.ctype.bits - (1 if lp.ctype.signed else 0)) - 1
         if s < 1:
-            raise UsageError(f"the tile size of '{b}' must be at least 1")
+            raise UsageError(f"the tile size of '{b}' must be at least 1, not {s}")
+        if s * lp.step > top:
+            raise UsageError(f"the tile size {s} of '{b}' does not fit its type {lp.ctype.spelling} "
+                             f"(a tile spans {s * lp.step} values; the largest is {top})")
     return band, sizes
 
 
