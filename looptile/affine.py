@@ -16,7 +16,7 @@ from .errors import Refusal
 from .frontend import LoopSite, TranslationUnit
 from .model import Affine, ArrayInfo, Bound, Loop, Obligation, Param, Statement
 from .scope import Symbol
-from .source import Token, tokenize
+from .source import Token, spelled, tokenize
 
 
 class AboveMax(Affine):
@@ -105,6 +105,10 @@ def column_on_line(tu: TranslationUnit, line: int, node: c_ast.Node) -> int | No
     they are): find which occurrence of the token's spelling it is there, and take
     the same occurrence on the original line."""
     start = tu.source.offset(line)
+    if isinstance(node, c_ast.Pragma):  # `#pragma` line or the `_Pragma` operator
+        end = start + len(tu.source.line_text(line)) + 1
+        hit = next((t for t in tu.all_between(start, end) if t.text == "_Pragma" or t.kind == "pp"), None)
+        return hit.start - start + 1 if hit is not None else None
     if isinstance(node, c_ast.UnaryOp) and node.op not in ("p++", "p--"):
         # pycparser places a prefix operator at its operand: take the operator before it.
         inner = column_on_line(tu, line, node.expr)
@@ -327,7 +331,7 @@ def text_affine(ctx: Ctx, toks: list[Token]) -> Affine | None:
 def loop_bound(ctx: Ctx, node: c_ast.Node, toks: list[Token], at: Loop | None, what: str,
            loops_for_obligation: tuple[str, ...]) -> Bound:
     """A loop bound: its value for the analysis and its spelling for emission."""
-    text = ctx.tu.source.text[toks[0].start:toks[-1].end] if toks else ""
+    text = spelled(ctx.tu.source.text, toks)  # comments in a bound move before the nest
     try:
         value, t, obl = int_affine(ctx, node)
     except NotAffine as exc:

@@ -13,7 +13,7 @@ from pathlib import Path
 import jinja2
 
 from .model import Affine, Loop, Nest
-from .source import SourceFile, tokenize
+from .source import SourceFile, spelled, tokenize
 from .transform.tile import Slot, TilePlan
 
 
@@ -202,8 +202,7 @@ class NestEmitter:
     def _step_text(self, lp: Loop) -> str:
         toks = [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
         semis = [k for k, t in enumerate(toks) if t.text == ";"]
-        third = toks[semis[-1] + 1:-1]
-        return self.src.text[third[0].start:third[-1].end]
+        return spelled(self.src.text, toks[semis[-1] + 1:-1])
 
     def _full(self, lp: Loop, size: int) -> int:
         return full_form(lp, size)
@@ -256,7 +255,8 @@ class NestEmitter:
         lp = self.loops[s.iterator]
         if s.scan is not None:
             return self.scan_header(s, None, lp)
-        return self.src.text[lp.for_offset:lp.header_end]
+        toks = [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
+        return spelled(self.src.text, toks)
 
     def scan_header(self, s: Slot, tile: str | None, lp: Loop) -> str:
         """A loop over max(lowers) .. min(uppers) (reversed for a down-counting loop),
@@ -440,6 +440,9 @@ def emit_nest(src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, gua
         body = em.versioned(body, checks)
     lines += body
     text = render("nest.c.j2", lines=lines)
+    line_start = src.line_starts[src.line_col(nest.start)[0] - 1]
+    if src.text[line_start:nest.start].strip():  # code or a comment before the nest on its line
+        text = "\n" + em.base + text
     return text.replace("\n", src.newline) if src.newline != "\n" else text
 
 

@@ -45,6 +45,10 @@ def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] 
     """The model of the nest whose outermost loop is ``site``, or a Refusal."""
     types, scope = _scope_of(tu, site)
     ctx = Ctx(tu, site, scope, types, assume_pure)
+    func = next(f for f in tu.functions if f.name == site.function)
+    if func.node.param_decls:
+        raise ctx.refuse(f"'{site.function}' is an old-style (K&R) definition, whose parameter types looptile does "
+                         "not read; declare the parameters in the prototype", func.node.decl)
     perfect: list[Loop] = []
     node, s = site.node, site
     while True:
@@ -70,8 +74,6 @@ def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] 
     comments, pps = [], []
     for t in tu.all_between(outer.for_offset, outer.body_end):
         if innermost.body_start <= t.start < innermost.body_end:
-            continue
-        if any(lp.start.start <= t.start < lp.start.end or lp.limit.start <= t.start < lp.limit.end for lp in perfect):
             continue
         if t.kind == "comment":
             comments.append(t.text)
@@ -140,12 +142,23 @@ def _check_altered(ctx: Ctx, outer: Loop) -> None:
 
 
 def _check_writes(ctx: Ctx) -> None:
+    arrays = {a.key: a.name for a in ctx.arrays.values() if not a.local}
+    for st in ctx.statements:  # an array element a bound reads (an opaque bound such as len[0])
+        for acc in st.accesses:
+            name = arrays.get(acc.array)
+            if acc.write and name in ctx.used_as_param:
+                raise ctx.refuse(f"the nest writes elements of '{name}', which a loop bound reads; the trip counts "
+                                 "could change while the loops run", offset=_statement_offset(ctx, st))
     for name, node in ctx.written.items():
         if name in ctx.used_as_param:
             raise ctx.refuse(f"the nest writes '{name}', which a loop bound or subscript reads; "
                              "the trip counts would change while the loops run", node)
         if name in outer_iterators(ctx):
             raise ctx.refuse(f"the nest writes '{name}', the iterator of an enclosing loop", node)
+
+
+def _statement_offset(ctx: Ctx, st) -> int:
+    return ctx.tu.source.offset(st.line, st.col)
 
 
 def _enclosing_context(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str]) -> list[str]:

@@ -56,7 +56,7 @@ def select(tu: TranslationUnit, sel: str) -> LoopSite:
         sites = sorted((s for s in tu.loops() if s.line == line), key=lambda s: s.token_index or 0)
         if not sites:
             raise UsageError(f"no for loop starts on line {line}; run 'looptile analyze {path}' to list the nests",
-                             path=path, line=line if line <= len(tu.source.line_starts) else None)
+                             path=path, line=line if 1 <= line <= len(tu.source.line_starts) else None)
         first = sites[0]
         siblings = [s for s in sites[1:] if not _inside(s, first)]
         if siblings:

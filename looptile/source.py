@@ -37,7 +37,8 @@ class SourceFile:
     def __post_init__(self) -> None:
         self.text = self.data.decode("latin-1")
         self.newline = "\r\n" if "\r\n" in self.text else "\n"
-        self.line_starts = [0] + [m.end() for m in re.finditer("\n", self.text)]
+        # A lone CR ends a line too, as it does for the C compiler.
+        self.line_starts = [0] + [m.end() for m in re.finditer("\r\n|\r|\n", self.text)]
         self.indent_unit = _guess_indent_unit(self.text)
 
     def line_col(self, offset: int) -> tuple[int, int]:
@@ -110,7 +111,8 @@ def tokenize(text: str, start: int = 0, end: int | None = None) -> list[Token]:
     while pos < end:
         m = _WS.match(text, pos, end)
         if m:
-            if "\n" in m.group().replace("\\\n", "").replace("\\\r\n", ""):
+            gap = m.group().replace("\\\r\n", "").replace("\\\n", "")
+            if "\n" in gap or "\r" in gap:
                 at_line_start = True
             pos = m.end()
             continue
@@ -167,10 +169,13 @@ def tokenize(text: str, start: int = 0, end: int | None = None) -> list[Token]:
 def _line_end(text: str, pos: int, end: int) -> int:
     """End of a // comment or directive line, following backslash continuations."""
     while True:
-        nl = text.find("\n", pos, end)
-        if nl < 0:
+        found = [k for k in (text.find("\n", pos, end), text.find("\r", pos, end)) if k >= 0]
+        if not found:
             return end
-        stop = nl - 1 if nl > 0 and text[nl - 1] == "\r" else nl
+        nl = min(found)
+        if text.startswith("\r\n", nl):
+            nl += 1
+        stop = nl - 1 if text[nl] == "\n" and nl > 0 and text[nl - 1] == "\r" else nl
         if stop > 0 and text[stop - 1] == "\\":
             pos = nl + 1
             continue
@@ -274,3 +279,16 @@ def statement_end(tokens: list[Token], i: int) -> int:
         elif s == ";" and depth == 0:
             return k
     return -1
+
+
+def spelled(text: str, toks: list[Token]) -> str:
+    """Code tokens as written, comments dropped: a gap of plain spaces is kept, any other gap
+    (a comment, a line break) becomes one space."""
+    out: list[str] = []
+    for k, t in enumerate(toks):
+        if k:
+            gap = text[toks[k - 1].end:t.start]
+            if gap:
+                out.append(gap if gap.strip(" \t") == "" and "\n" not in gap else " ")
+        out.append(t.text)
+    return "".join(out)

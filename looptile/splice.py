@@ -51,11 +51,19 @@ def write_atomic(path: str, data: bytes, mode_from: str | None = None) -> None:
         mode = os.stat(mode_from or path).st_mode & 0o7777
     except OSError:
         mode = 0o644
+    tmp = None
     try:
         fd, tmp = tempfile.mkstemp(dir=directory, prefix=".looptile-", suffix=".tmp")
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
         os.chmod(tmp, mode)
         os.replace(tmp, path)
+        tmp = None
     except OSError as exc:
         raise InputError(f"cannot write the file; {exc.strerror}", path=path) from exc
+    finally:
+        if tmp is not None:  # the rename failed: leave nothing behind
+            try:
+                os.unlink(tmp)
+            except OSError:
+                pass

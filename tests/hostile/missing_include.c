@@ -1,0 +1,9 @@
+/* Hostile input: an include that exists nowhere. */
+#include <stdio.h>
+#include "nowhere.h"
+void settle_surface(int n, int m, double h[n][m])
+{
+    for (int i = 0; i < n; i++)
+        for (int j = 0; j < m; j++)
+            h[i][j] = h[i][j] * 0.5;
+}
