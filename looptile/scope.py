@@ -1,6 +1,8 @@
 """What is visible at a loop: declarations of the file scope, the function and its blocks."""
 from __future__ import annotations
 
+from collections import ChainMap
+from collections.abc import Mapping
 from dataclasses import dataclass
 
 from pycparser import c_ast
@@ -27,10 +29,11 @@ def _is_system(coord) -> bool:
 class _Visible(c_ast.NodeVisitor):
     """Walks a function body keeping a scope stack; snapshots it at every for statement."""
 
-    def __init__(self, types: TypeTable, base: dict[str, Symbol]) -> None:
+    def __init__(self, types: TypeTable, base: Mapping[str, Symbol]) -> None:
         self.types = types
-        self.stack: list[dict[str, Symbol]] = [dict(base)]
-        self.at_for: dict[int, dict[str, Symbol]] = {}
+        self.base = base
+        self.stack: list[dict[str, Symbol]] = [{}]
+        self.at_for: dict[int, Mapping[str, Symbol]] = {}
 
     def _declare(self, d: c_ast.Decl) -> None:
         if d.name:
@@ -49,10 +52,8 @@ class _Visible(c_ast.NodeVisitor):
             self.visit(node.init)
 
     def visit_For(self, node: c_ast.For) -> None:
-        merged: dict[str, Symbol] = {}
-        for s in self.stack:
-            merged.update(s)
-        self.at_for[id(node)] = merged
+        # The block scopes are small: copy them; the file scope is shared, not copied.
+        self.at_for[id(node)] = ChainMap(*[dict(b) for b in reversed(self.stack)], self.base)
         self.stack.append({})
         if isinstance(node.init, c_ast.DeclList):
             for d in node.init.decls:
@@ -66,21 +67,43 @@ class _Visible(c_ast.NodeVisitor):
                 self.visit(part)
 
 
+class FileScope(Mapping):
+    """Declarations at file scope before one external declaration: a view, not a copy.
+
+    ``entries`` (name -> [(position, symbol)], in order) is shared by every function."""
+
+    def __init__(self, entries: dict[str, list[tuple[int, Symbol]]], before: int) -> None:
+        self.entries, self.before = entries, before
+
+    def __getitem__(self, name: str) -> Symbol:
+        for pos, sym in reversed(self.entries.get(name, ())):
+            if pos < self.before:
+                return sym
+        raise KeyError(name)
+
+    def __iter__(self):
+        return (n for n in self.entries if n in self)
+
+    def __len__(self) -> int:
+        return sum(1 for _ in self)
+
+
 def file_scope(ast: c_ast.FileAST, types: TypeTable, upto: c_ast.FuncDef,
-               cache: dict | None = None) -> dict[str, Symbol]:
+               cache: dict | None = None) -> Mapping[str, Symbol]:
     """Globals, functions and enumerators declared before ``upto``."""
-    entries = cache.get("file_symbols") if cache is not None else None
-    if entries is None:
-        entries = _file_symbols(ast, types)
+    shared = cache.get("file_symbols") if cache is not None else None
+    if shared is None:
+        entries: dict[str, list[tuple[int, Symbol]]] = {}
+        positions: dict[int, int] = {}
+        for k, (ext, name, sym) in enumerate(_file_symbols(ast, types)):
+            positions.setdefault(id(ext), k)
+            if sym is not None:
+                entries.setdefault(name, []).append((k, sym))
+        shared = (entries, positions)
         if cache is not None:
-            cache["file_symbols"] = entries
-    syms: dict[str, Symbol] = {}
-    for ext, name, sym in entries:
-        if ext is upto:
-            break
-        if sym is not None:
-            syms[name] = sym
-    return syms
+            cache["file_symbols"] = shared
+    entries, positions = shared
+    return FileScope(entries, positions.get(id(upto), 1 << 62))
 
 
 def _file_symbols(ast: c_ast.FileAST, types: TypeTable) -> list[tuple[c_ast.Node, str, Symbol | None]]:
@@ -117,14 +140,14 @@ def _enumerators(node: c_ast.Node, syms: dict[str, Symbol]) -> None:
 
 
 def visible_at_loops(ast: c_ast.FileAST, types: TypeTable, func: c_ast.FuncDef,
-                     cache: dict | None = None) -> dict[int, dict[str, Symbol]]:
+                     cache: dict | None = None) -> dict[int, Mapping[str, Symbol]]:
     """For every for statement of ``func`` (keyed by id of the node): the symbols in scope."""
-    base = file_scope(ast, types, func, cache)
+    params: dict[str, Symbol] = {}
     fdecl = func.decl.type
     if isinstance(fdecl, c_ast.FuncDecl) and fdecl.args is not None:
         for p in fdecl.args.params:
             if isinstance(p, c_ast.Decl) and p.name:
-                base[p.name] = Symbol(p.name, types.of(p.type), "param", p)
-    v = _Visible(types, base)
+                params[p.name] = Symbol(p.name, types.of(p.type), "param", p)
+    v = _Visible(types, ChainMap(params, file_scope(ast, types, func, cache)))
     v.visit(func.body)
     return v.at_for
