@@ -26,6 +26,26 @@ class BodyWalker:
     def __init__(self, ctx: Ctx) -> None:
         self.ctx = ctx
         self.accesses: list[Access] = []
+        self.guards: list[list[tuple[Affine, bool]]] = []  # conditions of the enclosing ifs
+
+    def affine_condition(self, node: c_ast.Node) -> list[tuple[Affine, bool]] | None:
+        """A condition that is a conjunction of affine comparisons, as ``a >= 0`` / ``a == 0``
+        facts; None when it is anything else (it then restricts nothing)."""
+        if isinstance(node, c_ast.BinaryOp) and node.op == "&&":
+            left, right = self.affine_condition(node.left), self.affine_condition(node.right)
+            return left + right if left is not None and right is not None else None
+        if not (isinstance(node, c_ast.BinaryOp) and node.op in ("<", "<=", ">", ">=", "==")):
+            return None
+        try:
+            a, _, oa = int_affine(self.ctx, node.left)
+            b, _, ob = int_affine(self.ctx, node.right)
+        except NotAffine:
+            return None
+        if oa or ob:
+            return None  # unsigned arithmetic that may wrap: not the integers the model uses
+        one = Affine(const=1)
+        return [{"<": (b - a - one, False), "<=": (b - a, False), ">": (a - b - one, False),
+                 ">=": (a - b, False), "==": (a - b, True)}[node.op]]
 
     # -- statements
     def stmt(self, node: c_ast.Node, path: tuple[int | str, ...]) -> None:
@@ -41,9 +61,15 @@ class BodyWalker:
             self.decl(node, path)
         elif isinstance(node, c_ast.If):
             self.leaf(node.cond, path + (0,), node)
+            cond = self.affine_condition(node.cond)
+            self.guards.append(cond or [])
             self.stmt(node.iftrue, path + (1,))
+            self.guards.pop()
             if node.iffalse is not None:
+                negated = _negate(cond) if cond is not None else None
+                self.guards.append(negated or [])
                 self.stmt(node.iffalse, path + (2,))
+                self.guards.pop()
         elif isinstance(node, (c_ast.Assignment, c_ast.UnaryOp, c_ast.FuncCall, c_ast.ExprList,
                                c_ast.TernaryOp, c_ast.BinaryOp, c_ast.Cast, c_ast.ID, c_ast.ArrayRef)):
             self.leaf(node, path, node)
@@ -114,7 +140,8 @@ class BodyWalker:
         line = at.coord.line if at.coord else ctx.site.line
         col = column_on_line(ctx.tu, line, at) or 1
         name = f"S{len(ctx.statements) + 1}"
-        ctx.statements.append(Statement(name, line, col, tuple(ctx.iterators), path, tuple(self.accesses)))
+        guards = tuple(g for level in self.guards for g in level)
+        ctx.statements.append(Statement(name, line, col, tuple(ctx.iterators), path, tuple(self.accesses), guards))
 
     # -- expressions
     def expr(self, node: c_ast.Node) -> None:
@@ -243,6 +270,14 @@ class BodyWalker:
             raise ctx.refuse(f"the elements of '{name}' are not numbers", node)
         info = ctx.arrays.setdefault(name, ArrayInfo(name, name, elem, ndims, restrict=t.restrict))
         return name, info
+
+
+def _negate(cond: list[tuple[Affine, bool]]) -> list[tuple[Affine, bool]] | None:
+    """The else branch of a single inequality ``a >= 0`` is ``-a - 1 >= 0``; other negations are
+    not convex, and the else branch is then taken to run."""
+    if len(cond) == 1 and not cond[0][1]:
+        return [(cond[0][0].scale(-1) - Affine(const=1), False)]
+    return None
 
 
 def array_dims(t: CType) -> tuple[int, CType]:

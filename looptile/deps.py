@@ -165,7 +165,8 @@ class NestAnalysis:
         return s
 
     def _domain(self, s: Statement) -> isl.Set:
-        return self.chain_set(s.name, s.loops)
+        guards = " and ".join(f"{self._r(a)} {'=' if eq else '>='} 0" for a, eq in s.guards)
+        return self.chain_set(s.name, s.loops, guards)
 
     def _sched_dims(self, s: Statement, dims: list[ScheduleDim] | None) -> list[str]:
         out = []

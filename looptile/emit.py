@@ -500,7 +500,7 @@ def printed_expressions(nest: Nest, plan: TilePlan, facts: EmitFacts) -> list[tu
             lowers, uppers = s.scan
             for a in (lowers if lp.direction > 0 else uppers):
                 add(a, lp)
-            for a in ([u + one for u in uppers] if lp.direction > 0 else lowers + [lo - one for lo in lowers]):
+            for a in ([u + one for u in uppers] if lp.direction > 0 else list(lowers) + [lo - one for lo in lowers]):
                 add(a, lp)  # down: the iterator also reaches lower - 1 (it must not wrap)
     first = nest.loop(plan.band[0]) if plan.band else nest.perfect[0]
     for a, _eq in facts.full_extra:

@@ -113,6 +113,9 @@ class Statement:
     loops: tuple[str, ...]  # iterators of the enclosing loops of the nest, outermost first
     tail: tuple[int | str, ...]  # schedule after the perfect loops: positions (int) and iterators (str)
     accesses: tuple[Access, ...]
+    # Affine conditions of the enclosing ifs: (a, is_equality) meaning a >= 0 (or a == 0).
+    # An if whose condition is not affine is not recorded: the statement is taken to run.
+    guards: tuple[tuple[Affine, bool], ...] = ()
 
 
 @dataclass(frozen=True)
