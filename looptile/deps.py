@@ -319,24 +319,29 @@ class NestAnalysis:
         b = rest[len(s_src.loops):]
         inst_a = Instance(src, s_src.line, tuple(zip(s_src.loops, a)))
         inst_b = Instance(dst, s_dst.line, tuple(zip(s_dst.loops, b)))
-        env = dict(zip(s_src.loops, a)) | {_from_isl(n): v for n, v in params}
-        elem = self._element(s_src, key, env, kind)
+        pvals = {_from_isl(n): v for n, v in params}
+        elem = self._element(s_src, s_dst, key, dict(zip(s_src.loops, a)) | pvals,
+                             dict(zip(s_dst.loops, b)) | pvals, kind)
         # The nest's own parameters in their order of first use, then any from the context.
         order = {n: k for k, n in enumerate(self.params)}
         ranked = sorted(params, key=lambda nv: (order.get(nv[0], len(order)), nv[0]))
         shown = tuple((self.param_text.get(n, _from_isl(n)), v) for n, v in ranked)
         return Witness(kind, inst_a, inst_b, elem, kind != "anti", kind != "flow", shown)
 
-    def _element(self, s: Statement, key: str, env: dict[str, int], kind: str) -> str:
-        want_write = kind != "anti"
+    def _element(self, src: Statement, dst: Statement, key: str, env_src: dict[str, int],
+                 env_dst: dict[str, int], kind: str) -> str:
+        """The element both instances touch: an access of the source (a write unless the
+        dependence is anti) that equals an access of the sink (a read for flow)."""
         arr = self.nest.array(key)
-        for a in s.accesses:
-            if a.array == key and a.write == want_write:
-                idx = [_eval(x, env) for x in a.subscripts]
-                if arr.local:
-                    return arr.name
-                return arr.name + "".join(f"[{i}]" for i in idx)
-        return arr.name
+        if arr.local:
+            return arr.name
+        src_write, dst_write = kind != "anti", kind != "flow"
+        theirs = {tuple(_eval(x, env_dst) for x in acc.subscripts)
+                  for acc in dst.accesses if acc.array == key and acc.write == dst_write}
+        mine = [tuple(_eval(x, env_src) for x in acc.subscripts)
+                for acc in src.accesses if acc.array == key and acc.write == src_write]
+        idx = next((m for m in mine if m in theirs), mine[0] if mine else ())
+        return arr.name + "".join(f"[{i}]" for i in idx)
 
     # -- other questions
     def always_nonnegative(self, expr: Affine, loops: tuple[str, ...]) -> bool:
@@ -511,7 +516,14 @@ def full_tile_constraints(analysis: NestAnalysis, boxed: list[tuple[str, str, in
     # Loops inside the test that are not boxed keep their own headers: only the band's
     # and the outer loops' constraints decide whether the box is inside.
     its = [i for i in nest.iterators if i in band or i in kept]
-    others: list[str] = []
+    # Loops whose iterators those bounds use but which run inside the test: projected out.
+    others = []
+    for i in its + others:
+        lp = analysis.loops[i]
+        for ref in sorted((lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators)):
+            if ref not in its and ref not in others:
+                others.append(ref)
+    its = its + others
     tiles = [t for _, t, _ in boxed]
     extra = list(kept) + tiles
     present = {_from_isl(p) for p in analysis.params} | set(extra)

@@ -159,6 +159,13 @@ def split_point(nest: Nest, plan: TilePlan) -> SplitPoint:
     return SplitPoint(kept, boxed, tuple(rect))
 
 
+def main_and_remainder(plan: TilePlan) -> bool:
+    """One strip-mined rectangular loop in split style: a main loop over whole tiles and a
+    remainder loop (a non-rectangular one takes the general whole-tile test instead)."""
+    tiles = [s for s in plan.slots if s.kind == "tile"]
+    return len(plan.band) == 1 and plan.remainder == "split" and all(t.hull is None for t in tiles)
+
+
 def full_form(lp: Loop, size: int) -> int:
     """Smallest distance to the bound for which a whole tile of ``size`` iterations remains."""
     return lp.step * (size - 1) + (0 if lp.inclusive else 1)
@@ -346,7 +353,7 @@ class NestEmitter:
         if not tile_positions:
             return self.loops_and_body([self.plain_header(s) for s in slots], 0)
         last_tile = tile_positions[-1]
-        single = len(plan.band) == 1 and plan.remainder == "split"
+        single = main_and_remainder(plan)
         for s in slots[: last_tile + (0 if single else 1)]:
             if s.kind == "tile":
                 tiles[s.iterator] = s.name
@@ -369,7 +376,10 @@ class NestEmitter:
                 for s in rest]
         slow = [self.point_header(s, tiles[s.iterator], False) if s.kind == "point" else self.plain_header(s)
                 for s in rest]
-        out.append(Line(ind, f"if ({self.full_test(rest, tiles)}) {{"))
+        test = self.full_test(rest, tiles)
+        if not test:  # every tile is whole wherever these loops run: the fast path alone
+            return out + self.loops_and_body(fast, depth)
+        out.append(Line(ind, f"if ({test}) {{"))
         out.extend(self.loops_and_body(fast, depth + 1))
         out.append(Line(ind, "} else {"))
         out.extend(self.loops_and_body(slow, depth + 1))
@@ -419,7 +429,7 @@ class NestEmitter:
 
     def c89_wrap(self, lines: list[Line]) -> list[Line]:
         decls = [f"{self.loops[s.iterator].ctype.spelling} {s.name};" for s in self.plan.slots if s.kind == "tile"]
-        if not self.facts.c89 or not decls or len(self.plan.band) == 1 and self.plan.remainder == "split":
+        if not self.facts.c89 or not decls or main_and_remainder(self.plan):
             return lines
         shifted = [Line(ln.indent + self.unit if ln.indent.startswith(self.base) else ln.indent, ln.text)
                    for ln in lines]

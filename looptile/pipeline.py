@@ -11,7 +11,16 @@ from pycparser import c_parser
 
 from . import deps, extract, frontend, toolchain
 from .deps import Dependence, Legality, NestAnalysis, Witness
-from .emit import GUARD_MARK, EmitFacts, emit_nest, full_form, guard_comment, printed_expressions, split_point
+from .emit import (
+    GUARD_MARK,
+    EmitFacts,
+    emit_nest,
+    full_form,
+    guard_comment,
+    main_and_remainder,
+    printed_expressions,
+    split_point,
+)
 from .errors import InternalError, Refusal, UsageError
 from .flags import CompileFlags
 from .frontend import LoopSite, TranslationUnit
@@ -220,7 +229,7 @@ def emit_facts(nest: Nest, analysis: NestAnalysis, plan: TilePlan, c89: bool) ->
             wide.add(s.iterator)
     extra: tuple = ()
     sp = split_point(nest, plan)
-    if plan.remainder == "split" and len(plan.band) > 1 and len(sp.rect) < len(sp.boxed):
+    if plan.remainder == "split" and not main_and_remainder(plan) and len(sp.rect) < len(sp.boxed):
         known = []
         tiles = {s.iterator: s.name for s in plan.slots if s.kind == "tile"}
         for s in sp.boxed:
