@@ -516,14 +516,13 @@ def full_tile_constraints(analysis: NestAnalysis, boxed: list[tuple[str, str, in
     # Loops inside the test that are not boxed keep their own headers: only the band's
     # and the outer loops' constraints decide whether the box is inside.
     its = [i for i in nest.iterators if i in band or i in kept]
-    # Loops whose iterators those bounds use but which run inside the test: projected out.
-    others = []
-    for i in its + others:
+    # A boxed loop whose bounds use a loop that runs inside the test (all its values, not some):
+    # no whole-tile test without a universal quantifier; the caller falls back to clamp.
+    for i in its:
         lp = analysis.loops[i]
-        for ref in sorted((lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators)):
-            if ref not in its and ref not in others:
-                others.append(ref)
-    its = its + others
+        if (lp.start.value.names() | lp.limit.value.names()) & (set(nest.iterators) - set(its)):
+            raise BoundsNotAffine("a tiled loop's bounds use a loop inside the tile")
+    others: list[str] = []
     tiles = [t for _, t, _ in boxed]
     extra = list(kept) + tiles
     present = {_from_isl(p) for p in analysis.params} | set(extra)

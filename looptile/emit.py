@@ -162,8 +162,8 @@ def split_point(nest: Nest, plan: TilePlan) -> SplitPoint:
 def main_and_remainder(plan: TilePlan) -> bool:
     """One strip-mined rectangular loop in split style: a main loop over whole tiles and a
     remainder loop (a non-rectangular one takes the general whole-tile test instead)."""
-    tiles = [s for s in plan.slots if s.kind == "tile"]
-    return len(plan.band) == 1 and plan.remainder == "split" and all(t.hull is None for t in tiles)
+    rectangular = all(s.hull is None and s.scan is None for s in plan.slots)
+    return len(plan.band) == 1 and plan.remainder == "split" and rectangular
 
 
 def full_form(lp: Loop, size: int) -> int:
