@@ -207,7 +207,7 @@ class NestEmitter:
         return _plus(far, 1 if lp.direction > 0 else -1)
 
     def _step_text(self, lp: Loop) -> str:
-        toks = [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
+        toks = self._header_tokens(lp)
         semis = [k for k, t in enumerate(toks) if t.text == ";"]
         return spelled(self.src.text, toks[semis[-1] + 1:-1])
 
@@ -262,8 +262,11 @@ class NestEmitter:
         lp = self.loops[s.iterator]
         if s.scan is not None:
             return self.scan_header(s, None, lp)
-        toks = [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
-        return spelled(self.src.text, toks)
+        return spelled(self.src.text, self._header_tokens(lp))
+
+    def _header_tokens(self, lp: Loop):
+        """The code tokens of ``for (...)`` (comments there are moved before the nest)."""
+        return [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
 
     def scan_header(self, s: Slot, tile: str | None, lp: Loop) -> str:
         """A loop over max(lowers) .. min(uppers) (reversed for a down-counting loop),

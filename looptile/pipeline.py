@@ -229,12 +229,12 @@ def emit_facts(nest: Nest, analysis: NestAnalysis, plan: TilePlan, c89: bool) ->
             wide.add(s.iterator)
     extra: tuple = ()
     sp = split_point(nest, plan)
-    if plan.remainder == "split" and not main_and_remainder(plan) and any(
-            s.scan is not None and set(s.defined) - set(sp.kept) for s in sp.boxed):
+    tested = plan.remainder == "split" and not main_and_remainder(plan)  # a whole-tile test is emitted
+    if tested and any(s.scan is not None and set(s.defined) - set(sp.kept) for s in sp.boxed):
         # A point loop inside the test whose range depends on a loop that also runs inside it:
         # a constant-trip fast path would ignore that dependence.
         raise SplitImpossible("a point loop's range depends on a loop inside the tile")
-    if plan.remainder == "split" and not main_and_remainder(plan) and len(sp.rect) < len(sp.boxed):
+    if tested and len(sp.rect) < len(sp.boxed):
         known = []
         tiles = {s.iterator: s.name for s in plan.slots if s.kind == "tile"}
         for s in sp.boxed:
