@@ -6,7 +6,7 @@ from pycparser import c_ast
 from .affine import AboveMax, Ctx, NotAffine, column_on_line, int_affine, outer_iterators
 from .ctype import CType
 from .headers import extract_loop
-from .model import Access, Affine, ArrayInfo, Obligation, Statement
+from .model import Access, Affine, ArrayInfo, Condition, Obligation, Statement
 
 # Pure functions of math.h (C11 7.12) that looptile treats as side-effect free.
 # Common practice: errno updates on domain errors are ignored (said in the guard comment).
@@ -26,15 +26,20 @@ class BodyWalker:
     def __init__(self, ctx: Ctx) -> None:
         self.ctx = ctx
         self.accesses: list[Access] = []
-        self.guards: list[list[tuple[Affine, bool]]] = []  # conditions of the enclosing ifs
+        self.guards: list[Condition | None] = []  # conditions of the enclosing ifs (None: not affine)
 
-    def affine_condition(self, node: c_ast.Node) -> list[tuple[Affine, bool]] | None:
-        """A condition that is a conjunction of affine comparisons, as ``a >= 0`` / ``a == 0``
-        facts; None when it is anything else (it then restricts nothing)."""
-        if isinstance(node, c_ast.BinaryOp) and node.op == "&&":
+    def affine_condition(self, node: c_ast.Node) -> Condition | None:
+        """A condition built from affine comparisons with ``&&``, ``||`` and ``!``; None when it
+        is anything else (it then restricts nothing)."""
+        if isinstance(node, c_ast.BinaryOp) and node.op in ("&&", "||"):
             left, right = self.affine_condition(node.left), self.affine_condition(node.right)
-            return left + right if left is not None and right is not None else None
-        if not (isinstance(node, c_ast.BinaryOp) and node.op in ("<", "<=", ">", ">=", "==")):
+            if left is None or right is None:
+                return None
+            return Condition("and" if node.op == "&&" else "or", parts=(left, right))
+        if isinstance(node, c_ast.UnaryOp) and node.op == "!":
+            inner = self.affine_condition(node.expr)
+            return Condition("not", parts=(inner,)) if inner is not None else None
+        if not (isinstance(node, c_ast.BinaryOp) and node.op in ("<", "<=", ">", ">=", "==", "!=")):
             return None
         try:
             a, _, oa = int_affine(self.ctx, node.left)
@@ -44,8 +49,11 @@ class BodyWalker:
         if oa or ob:
             return None  # unsigned arithmetic that may wrap: not the integers the model uses
         one = Affine(const=1)
-        return [{"<": (b - a - one, False), "<=": (b - a, False), ">": (a - b - one, False),
-                 ">=": (a - b, False), "==": (a - b, True)}[node.op]]
+        if node.op == "!=":
+            return Condition("not", parts=(Condition("eq", a - b),))
+        op, value = {"<": ("ge", b - a - one), "<=": ("ge", b - a), ">": ("ge", a - b - one),
+                     ">=": ("ge", a - b), "==": ("eq", a - b)}[node.op]
+        return Condition(op, value)
 
     # -- statements
     def stmt(self, node: c_ast.Node, path: tuple[int | str, ...]) -> None:
@@ -62,12 +70,11 @@ class BodyWalker:
         elif isinstance(node, c_ast.If):
             self.leaf(node.cond, path + (0,), node)
             cond = self.affine_condition(node.cond)
-            self.guards.append(cond or [])
+            self.guards.append(cond)
             self.stmt(node.iftrue, path + (1,))
             self.guards.pop()
             if node.iffalse is not None:
-                negated = _negate(cond) if cond is not None else None
-                self.guards.append(negated or [])
+                self.guards.append(Condition("not", parts=(cond,)) if cond is not None else None)
                 self.stmt(node.iffalse, path + (2,))
                 self.guards.pop()
         elif isinstance(node, (c_ast.Assignment, c_ast.UnaryOp, c_ast.FuncCall, c_ast.ExprList,
@@ -140,7 +147,7 @@ class BodyWalker:
         line = at.coord.line if at.coord else ctx.site.line
         col = column_on_line(ctx.tu, line, at) or 1
         name = f"S{len(ctx.statements) + 1}"
-        guards = tuple(g for level in self.guards for g in level)
+        guards = tuple(g for g in self.guards if g is not None)
         ctx.statements.append(Statement(name, line, col, tuple(ctx.iterators), path, tuple(self.accesses), guards))
 
     # -- expressions
@@ -270,14 +277,6 @@ class BodyWalker:
             raise ctx.refuse(f"the elements of '{name}' are not numbers", node)
         info = ctx.arrays.setdefault(name, ArrayInfo(name, name, elem, ndims, restrict=t.restrict))
         return name, info
-
-
-def _negate(cond: list[tuple[Affine, bool]]) -> list[tuple[Affine, bool]] | None:
-    """The else branch of a single inequality ``a >= 0`` is ``-a - 1 >= 0``; other negations are
-    not convex, and the else branch is then taken to run."""
-    if len(cond) == 1 and not cond[0][1]:
-        return [(cond[0][0].scale(-1) - Affine(const=1), False)]
-    return None
 
 
 def array_dims(t: CType) -> tuple[int, CType]:

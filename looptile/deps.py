@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import islpy as isl
 
 from .errors import UsageError
-from .model import Affine, Loop, Nest, Obligation, ScheduleDim, Statement
+from .model import Affine, Condition, Loop, Nest, Obligation, ScheduleDim, Statement
 
 _ctx = isl.DEFAULT_CONTEXT
 
@@ -164,8 +164,15 @@ class NestAnalysis:
             s = s.project_out(isl.dim_type.set, len(iterators), len(dims) - len(iterators))
         return s
 
+    def _condition(self, c: Condition) -> str:
+        if c.op in ("ge", "eq"):
+            return f"{self._r(c.value)} {'>=' if c.op == 'ge' else '='} 0"
+        if c.op == "not":
+            return f"not ({self._condition(c.parts[0])})"
+        return "(" + f" {c.op} ".join(f"({self._condition(p)})" for p in c.parts) + ")"
+
     def _domain(self, s: Statement) -> isl.Set:
-        guards = " and ".join(f"{self._r(a)} {'=' if eq else '>='} 0" for a, eq in s.guards)
+        guards = " and ".join(self._condition(g) for g in s.guards)
         return self.chain_set(s.name, s.loops, guards)
 
     def _sched_dims(self, s: Statement, dims: list[ScheduleDim] | None) -> list[str]:

@@ -106,6 +106,15 @@ class Access:
 
 
 @dataclass(frozen=True)
+class Condition:
+    """An affine condition of an ``if``: ``a >= 0`` (op "ge"), ``a == 0`` ("eq"), or "and",
+    "or", "not" of parts. Integer semantics; isl reads it as written."""
+    op: str
+    value: Affine | None = None
+    parts: tuple[Condition, ...] = ()
+
+
+@dataclass(frozen=True)
 class Statement:
     name: str  # S1, S2, ... in textual order
     line: int
@@ -113,9 +122,9 @@ class Statement:
     loops: tuple[str, ...]  # iterators of the enclosing loops of the nest, outermost first
     tail: tuple[int | str, ...]  # schedule after the perfect loops: positions (int) and iterators (str)
     accesses: tuple[Access, ...]
-    # Affine conditions of the enclosing ifs: (a, is_equality) meaning a >= 0 (or a == 0).
-    # An if whose condition is not affine is not recorded: the statement is taken to run.
-    guards: tuple[tuple[Affine, bool], ...] = ()
+    # Affine conditions of the enclosing ifs, all of which hold. An if whose condition is not
+    # affine is not recorded: the statement is taken to run.
+    guards: tuple[Condition, ...] = ()
 
 
 @dataclass(frozen=True)

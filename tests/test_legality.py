@@ -380,3 +380,65 @@ def test_three_deep_update_is_fully_permutable(tmp_path, perm):
                                   lambda par, x: tuple(x[index[c]] for c in perm), [(n,) for n in range(0, 7)])
     # outside check: brute-force enumeration of all instance pairs for n < 7 (no isl)
     assert legal, ex
+
+
+# ---------------------------------------------------------------- guarded statements
+
+# Conditions of an `if` around the update a[i][j] = a[i - 1][j + 1] + f[i][j] (the (<, >) vector
+# of Allen & Kennedy ch. 5 when it runs everywhere). Whether the interchange stays illegal depends
+# on which instances the condition lets run, so a model that ignored or misread the condition
+# would either refuse a legal rewrite or name a witness that never runs. Each entry: C condition,
+# the same condition in Python.
+GUARDS = [
+    ("i != j", lambda i, j, n, m: i != j),
+    ("i == j", lambda i, j, n, m: i == j),
+    ("!(i < j)", lambda i, j, n, m: not i < j),
+    ("i < 3 || j > m - 3", lambda i, j, n, m: i < 3 or j > m - 3),
+    ("i > 1 && j != 2", lambda i, j, n, m: i > 1 and j != 2),
+    ("!(i != j && i + j != 6)", lambda i, j, n, m: not (i != j and i + j != 6)),
+    ("(i - j == 2 || j - i == 2) && i != 4", lambda i, j, n, m: (i - j == 2 or j - i == 2) and i != 4),
+]
+
+
+@pytest.mark.parametrize("branch", ["then", "else"])
+@pytest.mark.parametrize("cond,py", GUARDS, ids=[g[0] for g in GUARDS])
+def test_guarded_update_verdict_and_witness(tmp_path, cond, py, branch):
+    update = "a[i][j] = a[i - 1][j + 1] + f[i][j];"
+    body = (f"if ({cond})\n                {update}" if branch == "then"
+            else f"if ({cond})\n                f[i][j] = 0.0;\n            else\n                {update}")
+    text = f"""\
+void patch_level(int n, int m, double a[n][m], double f[n][m])
+{{
+    for (int i = 1; i < n; i++)
+        for (int j = 0; j < m - 1; j++) {{
+            {body}
+        }}
+}}
+"""
+    nest, a = analysis_of(tmp_path, text, "patch_level")
+
+    def runs(i, j, n, m):
+        return py(i, j, n, m) == (branch == "then")
+
+    def accesses_for(n, m):
+        def acc(i, j):
+            if runs(i, j, n, m):
+                return [(("a", i - 1, j + 1), False), (("f", i, j), False), (("a", i, j), True)]
+            return [(("f", i, j), True)]
+        return acc
+
+    pars = [(n, m) for n in range(0, 9) for m in range(0, 9)]
+    want = all(brute_force_legal(lambda n, m: [(i, j) for i in range(1, n) for j in range(0, m - 1)],
+                                 accesses_for(n, m), lambda par, x: (x[1], x[0]), [(n, m)])[0]
+               for n, m in pars)
+    verdict = a.check(interchange())
+    # outside check: brute-force enumeration of all instance pairs for n, m < 9 (no isl)
+    assert verdict.legal == want, verdict
+    if not verdict.legal:
+        w = verdict.witness
+        params = dict(w.params)
+        for inst in (w.source, w.sink):
+            v = dict(inst.values)
+            if inst.statement == "S2" if branch == "then" else inst.statement == "S3":
+                # the witnessed instance of the guarded update must really run
+                assert runs(v["i"], v["j"], params["n"], params["m"]), (cond, branch, w)
