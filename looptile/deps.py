@@ -311,13 +311,12 @@ class NestAnalysis:
                 box = box.lower_bound_val(isl.dim_type.set, k, isl.Val(lo)) \
                     .upper_bound_val(isl.dim_type.set, k, isl.Val(64))
             if not box.is_empty():
-                try:
-                    point = box.lexmin().sample_point()
-                except isl.Error:
-                    point = box.sample_point()
+                point = _pick_point(box)
                 break
         if point is None:
-            point = flat.sample_point()
+            point = _pick_point(flat)
+        if point is None:
+            raise ValueError("isl found no point in a non-empty violation set")
         vals = [point.get_coordinate_val(isl.dim_type.set, k).to_python() for k in range(flat.dim(isl.dim_type.set))]
         params = tuple(zip(names, vals[:npar]))
         rest = vals[npar:]
@@ -373,6 +372,24 @@ class NestAnalysis:
                     if not delta.intersect(probe).is_empty():
                         return False
         return True
+
+
+def _pick_point(s: isl.Set) -> isl.Point | None:
+    """The lexicographically smallest point of ``s`` (small, readable values), checked to lie in
+    ``s``. isl's lexmin has returned an empty result for a non-empty set with division
+    constraints built up by operations; the same set read back from its text works, and a plain
+    sample point is the last resort."""
+    tries = (lambda: s.lexmin().sample_point(),
+             lambda: isl.Set(str(s), context=_ctx).lexmin().sample_point(),
+             s.sample_point)
+    for attempt in tries:
+        try:
+            point = attempt()
+        except isl.Error:
+            continue
+        if not point.is_void() and isl.Set.from_point(point).is_subset(s):
+            return point
+    return None
 
 
 def _maps(um: isl.UnionMap) -> list[isl.Map]:
