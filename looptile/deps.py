@@ -467,13 +467,18 @@ def _params_set(analysis: NestAnalysis, extra: list[str], body: str) -> isl.Set:
     return isl.Set("[" + ", ".join(names) + "] -> " + body, context=_ctx)
 
 
-def band_hull(analysis: NestAnalysis, iterator: str, kept: tuple[str, ...]) -> tuple[Affine, Affine]:
-    """Smallest and largest value of ``iterator`` over the nest, given the ``kept`` iterators (as values).
+def band_hull(analysis: NestAnalysis, iterator: str,
+              kept: tuple[str, ...]) -> tuple[tuple[Affine, ...], tuple[Affine, ...]]:
+    """The values of ``iterator`` over the nest, given the ``kept`` iterators (as values), as
+    max(lowers) .. min(uppers): the end the loop starts from (the low end for a loop counting
+    up) is one expression, the other a max/min.
 
-    Raises BoundsNotAffine when a bound is not a single affine expression.
+    Raises BoundsNotAffine when the bounds are not of that form.
     """
-    lo, hi, _ = _projected_bounds(analysis, iterator, kept)
-    return _single_affine(lo), _single_affine(hi)
+    lo, hi, nonempty = _projected_bounds(analysis, iterator, kept)
+    if analysis.loops[iterator].direction > 0:
+        return (_single_affine(lo),), _as_extremum(hi, nonempty, "min")
+    return _as_extremum(lo, nonempty, "max"), (_single_affine(hi),)
 
 
 def _projected_bounds(analysis: NestAnalysis, iterator: str,

@@ -230,16 +230,27 @@ class NestEmitter:
         largest value while not below the smallest.  Both ends are values the
         original loop also computes, so no new overflow."""
         assert s.hull is not None
-        lo, hi = s.hull
+        lowers, uppers = s.hull
+        one = Affine(const=1)
         if lp.direction > 0:
-            near, far = c_affine(lo, self.nest), paren(c_affine(hi + Affine(const=1), self.nest))
+            near = c_affine(lowers[0], self.nest)
+            far = self._extremum([c_affine(hi + one, self.nest) for hi in uppers], "<")
             op, more, past = "<", ">", far
         else:
-            near, far = c_affine(hi, self.nest), paren(c_affine(lo, self.nest))
+            near = c_affine(uppers[0], self.nest)
+            far = self._extremum([c_affine(lo, self.nest) for lo in lowers], ">")
             op, more, past = ">=", ">=", _plus(far, -1)
         return render("tile_loop.c.j2", decl=self._decl(lp, True), name=s.name, start=near, op=op, limit=far,
                       dist=self._dist(lp, s.name, far), more=more, span=span,
                       sign="+" if lp.direction > 0 else "-", past=past)
+
+    @staticmethod
+    def _extremum(terms: list[str], op: str) -> str:
+        """min (op "<") or max (op ">") of C expressions, as nested conditionals."""
+        out = paren(terms[0])
+        for t in terms[1:]:
+            out = f"({out} {op} {paren(t)} ? {out} : {paren(t)})"
+        return out
 
     def point_header(self, s: Slot, tile: str, full: bool) -> str:
         lp = self.loops[s.iterator]
@@ -506,8 +517,9 @@ def printed_expressions(nest: Nest, plan: TilePlan, facts: EmitFacts) -> list[tu
     for s in plan.slots:
         lp = nest.loop(s.iterator)
         if s.hull is not None:
-            lo, hi = s.hull
-            for a in ((lo, hi + one) if lp.direction > 0 else (hi, lo, lo - one)):
+            lowers, uppers = s.hull
+            for a in ((*lowers, *(hi + one for hi in uppers)) if lp.direction > 0
+                      else (*uppers, *lowers, *(lo - one for lo in lowers))):
                 add(a, lp)
         if s.scan is not None:
             lowers, uppers = s.scan

@@ -194,7 +194,7 @@ def _loop_facts(nest: Nest, plan: TilePlan, kept: tuple[str, ...]) -> list[Affin
         x = Affine.symbol(s.name)
         if s.kind == "tile":
             if s.hull is not None:
-                facts += [x - s.hull[0], s.hull[1] - x]
+                facts += [x - lo for lo in s.hull[0]] + [hi - x for hi in s.hull[1]]
                 continue
             if (lp.start.value.names() | lp.limit.value.names()) & set(nest.iterators):
                 continue
@@ -221,11 +221,12 @@ def emit_facts(nest: Nest, analysis: NestAnalysis, plan: TilePlan, c89: bool) ->
         if lp.ctype.is_unsigned:
             continue
         if s.hull is not None:  # the distance is taken from the hull's low end, given the defined iterators
-            near, loops = s.hull[0], s.defined
+            # (a max of lowers going down: non-negative when one of them is)
+            lows, loops = s.hull[0], s.defined
         else:
-            near = lp.start.value if lp.direction > 0 else lp.limit.value
+            lows = (lp.start.value if lp.direction > 0 else lp.limit.value,)
             loops = tuple(x for x in nest.iterators[: nest.iterators.index(s.iterator)])
-        if not analysis.always_nonnegative(near, loops):
+        if not any(analysis.always_nonnegative(low, loops) for low in lows):
             wide.add(s.iterator)
     extra: tuple = ()
     sp = split_point(nest, plan)

@@ -25,9 +25,10 @@ class Slot:
     iterator: str  # the original loop's iterator
     name: str  # the emitted iterator name
     size: int | None = None  # tile size in iterations (tiled loops only)
-    # Tile loops of non-rectangular loops run over the loop's hull (smallest, largest value
-    # given the iterators defined outside the tile loop), computed by the analysis.
-    hull: tuple[Affine, Affine] | None = None
+    # Tile loops of non-rectangular loops run over the loop's hull: the loop's values given the
+    # iterators defined outside the tile loop lie in max(lowers) .. min(uppers), computed by the
+    # analysis. The end the tiles start from (the low end going up) is one expression.
+    hull: tuple[tuple[Affine, ...], tuple[Affine, ...]] | None = None
     defined: tuple[str, ...] = ()  # iterators with a value where this loop starts
     # Point and untouched loops moved across loops they are not rectangular with run
     # over max(lowers) .. min(uppers), computed by the analysis (else: their own bounds).
@@ -127,7 +128,7 @@ def _source_loop_names(nest: Nest) -> set[str]:
     return {lp.iterator for lp in nest.perfect + nest.inner}
 
 
-HullFn = Callable[[str, tuple[str, ...]], tuple[Affine, Affine]]
+HullFn = Callable[[str, tuple[str, ...]], tuple[tuple[Affine, ...], tuple[Affine, ...]]]
 ScanFn = Callable[[str, tuple[str, ...]], tuple[tuple[Affine, ...], tuple[Affine, ...]]]
 
 
@@ -216,8 +217,9 @@ def _hull_slot(nest: Nest, slot: Slot, hull: HullFn | None) -> Slot:
     try:
         lo_hi = hull(slot.iterator, slot.defined)
     except ValueError as exc:
-        raise Refusal(f"the tile loop of '{slot.iterator}' needs bounds that are not one affine expression "
-                      f"({exc}); tile a rectangular band or choose another order", **where) from None
+        raise Refusal(f"the tile loop of '{slot.iterator}' needs bounds that are not affine (or a max/min of "
+                      f"affine expressions at the far end) ({exc}); tile a rectangular band or choose another "
+                      "order", **where) from None
     return Slot(slot.kind, slot.iterator, slot.name, slot.size, lo_hi, slot.defined)
 
 
@@ -227,5 +229,5 @@ def _dim(nest: Nest, slot: Slot) -> ScheduleDim:
     lp = nest.loop(slot.iterator)
     origin = lp.start.value
     if slot.hull is not None:
-        origin = slot.hull[0] if lp.direction > 0 else slot.hull[1]
+        origin = slot.hull[0][0] if lp.direction > 0 else slot.hull[1][0]
     return ScheduleDim(slot.iterator, block=lp.step * (slot.size or 1), origin=origin)
