@@ -41,8 +41,12 @@ def single_for(node: c_ast.Node) -> c_ast.For | None:
     return None
 
 
-def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] = frozenset()) -> Nest:
-    """The model of the nest whose outermost loop is ``site``, or a Refusal."""
+def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] = frozenset(),
+               directive: int | None = None) -> Nest:
+    """The model of the nest whose outermost loop is ``site``, or a Refusal.
+
+    ``directive``: the offset of a pragma right before the nest that the rewrite carries out
+    (and removes); any other pragma on the nest is still refused."""
     types, scope = _scope_of(tu, site)
     ctx = Ctx(tu, site, scope, types, assume_pure)
     func = next(f for f in tu.functions if f.name == site.function)
@@ -82,7 +86,7 @@ def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] 
     if pps:
         raise ctx.refuse("a preprocessor line between the loop headers would be detached by the rewrite",
                          offset=pps[0].start)
-    _check_pragma_on(ctx, outer)
+    _check_pragma_on(ctx, outer.for_offset, directive)
     macros = _subscript_macros(tu, innermost)
     return Nest(
         path=tu.source.path, function=site.function, line=outer.line, col=outer.col,
@@ -109,9 +113,13 @@ def _subscript_macros(tu: TranslationUnit, innermost: Loop) -> list[tuple[str, s
     return out
 
 
-def _check_pragma_on(ctx: Ctx, outer: Loop) -> None:
-    """A pragma right before the nest applies to its outermost loop; a rewrite would move it."""
-    prev = ctx.tu.token_before(outer.for_offset, skip=("comment",))
+def _check_pragma_on(ctx: Ctx, offset: int, directive: int | None) -> None:
+    """A pragma right before the nest applies to its outermost loop; a rewrite would move it.
+    The directive being carried out is skipped (a pragma before it would apply to the loops it
+    generates: refused too)."""
+    prev = ctx.tu.token_before(offset, skip=("comment",))
+    if prev is not None and directive is not None and prev.start == directive:
+        prev = ctx.tu.token_before(prev.start, skip=("comment",))
     if prev is not None and prev.kind == "pp" and re.match(r"#\s*pragma\b", prev.text):
         name = " ".join(prev.text.split())
         raise ctx.refuse(f"'{name}' applies to this loop nest; the rewrite would attach it to a different loop, "

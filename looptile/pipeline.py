@@ -37,6 +37,9 @@ class TileOptions:
     force: bool = False
     command: str = ""  # the command line that produces the rewrite, for the guard comment
     split_fallback: bool = True  # default remainder style: fall back to clamp where split cannot be built
+    # The offset of a directive (a pragma right before the nest) that this rewrite carries out:
+    # its lines are removed and the guard comment takes its place.
+    directive: int | None = None
 
 
 @dataclass(frozen=True)
@@ -129,8 +132,8 @@ def summarize(deps: list[Dependence]) -> list[str]:
 # ---------------------------------------------------------------- the tile job
 
 def analyse(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str],
-            assumptions: tuple[str, ...]) -> tuple[Nest, NestAnalysis]:
-    nest = extract.build_nest(tu, site, assume_pure)
+            assumptions: tuple[str, ...], directive: int | None = None) -> tuple[Nest, NestAnalysis]:
+    nest = extract.build_nest(tu, site, assume_pure, directive)
     analysis = NestAnalysis(nest, assumptions)
     for o in analysis.failing_obligations():
         raise Refusal(f"{o.what} is computed in unsigned arithmetic and can wrap around, so C does not "
@@ -311,7 +314,7 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
     src = tu.source
     site = select(tu, sel)
     _check_not_rewritten(tu, site, opts)
-    nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions)
+    nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive)
     plan = plan_tiling(nest, req, tu.identifiers, _from_analysis(analysis, deps.band_hull),
                        _from_analysis(analysis, deps.scan_bounds))
     _check_request_side(tu, nest, plan, opts)
@@ -342,15 +345,33 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
         text = "\n".join(guard.split("\n")[:1] + [src.indent_of(nest.start) + g for g in guard.split("\n")[1:]]) \
             + "\n" + src.indent_of(nest.start) + text
         text = text.replace("\n", src.newline) if src.newline != "\n" else text
-    new = apply_edits(src.data, [Edit(nest.start, nest.end, text)])
-    check_parses(tu, nest, text, new)
+    removed = directive_removal(tu, opts.directive)
+    new = apply_edits(src.data, [Edit(nest.start, nest.end, text)] + removed)
+    check_parses(tu, nest, text, new, sum(src.line_col(e.end)[0] - src.line_col(e.start)[0] for e in removed))
     notes += [f"assumed: {a}" for a in opts.assumptions]
     notes += [f"the rewrite runs only when {c} (no bound can overflow then); the original nest runs otherwise"
               for c in guard_bounds]
     return TileOutcome(src.path, src.data, new, nest, plan, tuple(notes))
 
 
-def check_parses(tu: TranslationUnit, nest: Nest, text: str, new: bytes) -> None:
+def directive_removal(tu: TranslationUnit, directive: int | None) -> list[Edit]:
+    """The edit that removes a carried-out directive: its whole line(s) when nothing else is on
+    them, else the pragma text alone."""
+    if directive is None:
+        return []
+    src = tu.source
+    tok = next(t for t in tu.all_between(directive, directive + 1) if t.start == directive)
+    line, _ = src.line_col(tok.start)
+    line_start = src.line_starts[line - 1]
+    end = tok.end
+    rest = src.text[end:]
+    m = re.match(r"[ \t]*(\r\n|\n|\r)", rest)
+    if m and not src.text[line_start:tok.start].strip():
+        return [Edit(line_start, end + m.end(), "")]
+    return [Edit(tok.start, end, "")]
+
+
+def check_parses(tu: TranslationUnit, nest: Nest, text: str, new: bytes, lines_removed_before: int = 0) -> None:
     """Preprocess the rewritten file and parse the rewritten region again; a failure is a
     looptile bug (an internal error), never a broken file.
 
@@ -359,7 +380,7 @@ def check_parses(tu: TranslationUnit, nest: Nest, text: str, new: bytes) -> None
     does not parse (say, the nest shares a line with other code), the whole file is parsed."""
     src = tu.source
     pre = toolchain.preprocess_text(new, src.path, tu.flags)
-    first = nest.line
+    first = nest.line - lines_removed_before
     last = first + text.count("\n")
     region = [t for ln, t in frontend.main_file_lines(pre, "<stdin>") if first <= ln <= last]
     typedefs = tu.cache["types"].typedefs if "types" in tu.cache else {}
