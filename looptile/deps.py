@@ -8,6 +8,7 @@ returned is plain data (ints, strings, dataclasses).
 """
 from __future__ import annotations
 
+import itertools
 import re
 from dataclasses import dataclass
 
@@ -175,11 +176,14 @@ class NestAnalysis:
         guards = " and ".join(self._condition(g) for g in s.guards)
         return self.chain_set(s.name, s.loops, guards)
 
-    def _sched_dims(self, s: Statement, dims: list[ScheduleDim] | None) -> list[str]:
+    def _sched_dims(self, s: Statement, dims: list[ScheduleDim | None] | None) -> list[str]:
         out = []
         if dims is None:
             dims = [ScheduleDim(lp.iterator) for lp in self.nest.perfect]
         for d in dims:
+            if d is None:  # a dimension that is 0 in this piece of the schedule
+                out.append("0")
+                continue
             lp = self.loops[d.iterator]
             x = _isl_name(d.iterator)
             if d.block is None:
@@ -197,13 +201,31 @@ class NestAnalysis:
         return out
 
     def _schedule(self, dims: list[ScheduleDim] | None) -> isl.UnionMap:
+        strips = sorted({d.when[:2] for d in dims or [] if d.when is not None})
         um = None
         for s in self.nest.statements:
             vars_ = ", ".join(_isl_name(i) for i in s.loops)
-            m = isl.Map(self._prefix() + f"{{ {s.name}[{vars_}] -> [{', '.join(self._sched_dims(s, dims))}] }}",
-                        context=_ctx).intersect_domain(self.domains[s.name])
-            um = isl.UnionMap.from_map(m) if um is None else um.union(isl.UnionMap.from_map(m))
+            # one piece per combination of whole / partial strips of the strip-mined loops
+            for whole in itertools.product((True, False), repeat=len(strips)):
+                state = dict(zip(strips, whole))
+                cond = " and ".join(self._whole_strip(it, b) if w else f"not ({self._whole_strip(it, b)})"
+                                    for (it, b), w in state.items())
+                piece = [d if d.when is None or state[d.when[:2]] == d.when[2] else None for d in dims or []]
+                out = self._sched_dims(s, None if dims is None else piece)
+                m = isl.Map(self._prefix() + f"{{ {s.name}[{vars_}] -> [{', '.join(out)}] : {cond or 'true'} }}",
+                            context=_ctx).intersect_domain(self.domains[s.name])
+                um = isl.UnionMap.from_map(m) if um is None else um.union(isl.UnionMap.from_map(m))
         return um if um is not None else isl.UnionMap("{ }", context=_ctx)
+
+    def _whole_strip(self, iterator: str, block: int) -> str:
+        """The strip of ``block`` (iterations times step) that contains ``iterator``, counted
+        from the loop's start, has all its iterations inside the loop's bounds."""
+        lp = self.loops[iterator]
+        x, lo, hi = _isl_name(iterator), self._r(lp.start.value), self._r(lp.limit.value)
+        last = block - lp.step  # offset of the strip's last iteration
+        if lp.direction > 0:
+            return f"({lo}) + {block}*floor(({x} - ({lo}))/{block}) + {last} {'<=' if lp.inclusive else '<'} {hi}"
+        return f"({lo}) - {block}*floor((({lo}) - {x})/{block}) - {last} {'>=' if lp.inclusive else '>'} {hi}"
 
     def _access(self, s: Statement, write: bool, array: str) -> isl.UnionMap | None:
         um = None

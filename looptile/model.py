@@ -191,8 +191,13 @@ class ScheduleDim:
 
     value = floor(direction * (x - origin) / block) when ``block`` is set (a tile
     loop), else direction * x (a point loop or an untouched loop).
+
+    ``when`` = (loop, block, whole) makes the value depend on the strip of ``loop`` (strips
+    of ``block`` iterations times step from the loop's start, as unroll-and-jam emits them):
+    the value above when the strip is whole (``whole`` True) or partial (False), else 0.
     """
 
     iterator: str
     block: int | None = None  # iterations times step of one tile
     origin: Affine | None = None
+    when: tuple[str, int, bool] | None = None

@@ -98,7 +98,8 @@ def preprocess(path: str, flags: CompileFlags, parseable: bool = True) -> Prepro
 
 
 def macro_definitions(path: str, flags: CompileFlags) -> dict[str, str]:
-    """Object-like macros defined at the end of the file (``cc -E -dM``), name -> body."""
+    """Macros defined at the end of the file (``cc -E -dM``), name -> body; a function-like
+    macro's value starts with "\\0function-like\\0" and then has its parameters and body."""
     argv = compiler() + ["-E", "-dM"] + list(flags.args) + [os.path.abspath(path)]
     out: dict[str, str] = {}
     for line in _run(argv, flags.directory, path, "preprocessing").splitlines():
@@ -106,8 +107,9 @@ def macro_definitions(path: str, flags: CompileFlags) -> dict[str, str]:
             continue
         rest = line[len("#define "):]
         name, _, body = rest.partition(" ")
-        if "(" in name:
-            out[name.split("(", 1)[0]] = "\0function-like"
+        if "(" in name:  # name(params) body: kept behind a marker no integer test accepts
+            head, _, tail = rest.partition(")")
+            out[name.split("(", 1)[0]] = "\0function-like\0" + head.split("(", 1)[1] + ")" + tail
             continue
         out[name] = body.strip()
     return out

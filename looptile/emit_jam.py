@@ -1,0 +1,265 @@
+"""Emission of unroll-and-jam and plain unrolling as C text in the file's own style.
+
+Each unrolled loop becomes a block with a main loop over whole strips and a remainder loop
+that continues from where the main loop stopped; the body of the innermost covered loop holds
+one copy of the original body per combination of strip offsets, outermost loop first. Copies
+are made on the original text (comments and macros kept): each unrolled iterator becomes
+``(i + k)``, and locals declared at the top of the body get a fresh name per copy.
+
+``BodyCopies`` also says which copies went where, so that the pipeline can parse the result
+again and compare every copy with the substitution done on the syntax tree.
+"""
+from __future__ import annotations
+
+import copy
+import itertools
+from dataclasses import dataclass
+
+from pycparser import c_ast
+
+from .emit import Line, full_form, literal, paren, render, unsigned_of
+from .model import Loop, Nest
+from .source import SourceFile, Token, spelled, tokenize
+from .transform.jam import JamPlan
+
+Offsets = tuple[tuple[str, int], ...]  # (iterator, value added in this copy), outermost first
+
+
+@dataclass(frozen=True)
+class CopySite:
+    """The body of the ``for_index``-th emitted for statement (in textual order, the for
+    statements inside the copies included) holds these copies, in this order."""
+
+    for_index: int
+    copies: tuple[Offsets, ...]
+
+
+@dataclass(frozen=True)
+class JamFacts:
+    wide_distance: frozenset[str] = frozenset()  # loops whose `limit - i` must be computed unsigned
+    c89: bool = False
+    renames: tuple[str, ...] = ()  # locals declared at the top of the copied body
+    fresh: tuple[tuple[str, ...], ...] = ()  # per copy index >= 1: the new names of ``renames``
+
+
+class JamEmitter:
+    def __init__(self, src: SourceFile, nest: Nest, plan: JamPlan, facts: JamFacts, body: c_ast.Node) -> None:
+        self.src, self.nest, self.plan, self.facts = src, nest, plan, facts
+        self.unit = src.indent_unit
+        self.base = src.indent_of(nest.start)
+        self.loops = [nest.loop(it) for it in plan.loops]
+        self.target = self.loops[-1]
+        self.body_ast = body
+        self.for_count = 0  # for statements emitted so far, in textual order
+        self.sites: list[CopySite] = []
+        self.inner_fors = sum(1 for _ in _fors(body))
+
+    # -- headers
+    def _header(self, lp: Loop) -> str:
+        toks = [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
+        return spelled(self.src.text, toks)
+
+    def _step_text(self, lp: Loop) -> str:
+        toks = [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
+        semis = [k for k, t in enumerate(toks) if t.text == ";"]
+        return spelled(self.src.text, toks[semis[-1] + 1:-1])
+
+    def _dist(self, lp: Loop) -> str:
+        far, v = paren(lp.limit.text), lp.iterator
+        if lp.iterator in self.facts.wide_distance:
+            u = unsigned_of(lp)
+            return f"({u}){far} - ({u}){v}" if lp.direction > 0 else f"({u}){v} - ({u}){far}"
+        return f"{far} - {v}" if lp.direction > 0 else f"{v} - {far}"
+
+    # -- structure
+    def lines(self) -> list[Line]:
+        return self._level(0, ((),), 0)
+
+    def _level(self, k: int, copies: tuple[Offsets, ...], depth: int) -> list[Line]:
+        lp = self.loops[k]
+        ind = self.base + self.unit * depth
+        if self.plan.factor(lp.iterator) == 1:
+            self.for_count += 1
+            return self._loop(self._header(lp), k, copies, depth)
+        return [Line(ind, "{")] + self._strips(k, copies, depth + 1) + [Line(ind, "}")]
+
+    def _strips(self, k: int, copies: tuple[Offsets, ...], depth: int) -> list[Line]:
+        """The inside of an unrolled loop's block: the iterator's declaration, the main loop
+        over whole strips, and the remainder loop that continues from where it stopped."""
+        lp = self.loops[k]
+        u = self.plan.factor(lp.iterator)
+        ind = self.base + self.unit * depth
+        out = [Line(ind, f"{lp.ctype.spelling} {lp.iterator};")] if lp.declared_in_for else []
+        main = render("main_loop.c.j2", name=lp.iterator, start=lp.start.text, op=lp.op, limit=paren(lp.limit.text),
+                      dist=self._dist(lp), full=literal(full_form(lp, u), lp), span=literal(lp.step * u, lp),
+                      sign="+" if lp.direction > 0 else "-")
+        sign = 1 if lp.direction > 0 else -1
+        more = tuple(c + ((lp.iterator, sign * lp.step * a),) for c in copies for a in range(u))
+        self.for_count += 1
+        out += self._loop(main, k, more, depth)
+        rem = render("jam_remainder.c.j2", name=lp.iterator, op=lp.op, limit=paren(lp.limit.text),
+                     step=self._step_text(lp))
+        self.for_count += 1
+        out += self._loop(rem, k, copies, depth)
+        return out
+
+    def _loop(self, header: str, k: int, copies: tuple[Offsets, ...], depth: int) -> list[Line]:
+        """A loop header and what it runs: the next covered loop, or the copies of the body."""
+        ind = self.base + self.unit * depth
+        if k + 1 < len(self.loops):
+            if self.plan.factor(self.loops[k + 1].iterator) > 1:  # its block opens on this line
+                return [Line(ind, header + " {")] + self._strips(k + 1, copies, depth + 1) + [Line(ind, "}")]
+            return [Line(ind, header)] + self._level(k + 1, copies, depth + 1)
+        self.sites.append(CopySite(self.for_count - 1, copies))
+        out = [Line(ind, header + " {")]
+        for n, offs in enumerate(copies):
+            out += _reindent(self.copy_text(offs, n), ind + self.unit)
+            self.for_count += self.inner_fors
+        out.append(Line(ind, "}"))
+        return out
+
+    def _compound(self) -> bool:
+        return isinstance(self.body_ast, c_ast.Compound)
+
+    # -- copies
+    def body_range(self) -> tuple[int, int]:
+        """The copied text: inside the braces of a compound body, else the statement."""
+        t = self.target
+        if self._compound():
+            toks = [x for x in tokenize(self.src.text, t.body_start, t.body_end) if x.kind != "comment"]
+            return toks[0].end, toks[-1].start
+        return t.body_start, t.body_end
+
+    def copy_text(self, offs: Offsets, n: int) -> str:
+        start, end = self.body_range()
+        text = self.src.text
+        subst = {it: k for it, k in offs if k != 0}
+        renames = dict(zip(self.facts.renames, self.facts.fresh[n - 1])) if n >= 1 and self.facts.renames else {}
+        out: list[str] = []
+        pos = start
+        prev: Token | None = None
+        for t in tokenize(text, start, end):
+            if t.kind == "id" and not (prev is not None and prev.text in (".", "->")):
+                new = None
+                if t.text in subst:
+                    k = subst[t.text]
+                    new = f"{t.text} + {k}" if k > 0 else f"{t.text} - {-k}"
+                    nxt = next((x for x in tokenize(text, t.end, end) if x.kind != "comment"), None)
+                    # a whole subscript, argument or parenthesised expression needs no parentheses
+                    alone = prev is not None and prev.text in ("[", "(", ",") and \
+                        nxt is not None and nxt.text in ("]", ")", ",")
+                    if not alone:
+                        new = f"({new})"
+                elif t.text in renames:
+                    new = renames[t.text]
+                if new is not None:
+                    out.append(text[pos:t.start])
+                    out.append(new)
+                    pos = t.end
+            if t.kind not in ("comment",):
+                prev = t
+        out.append(text[pos:end])
+        return "".join(out).replace("\r\n", "\n")
+
+
+def _reindent(text: str, indent: str) -> list[Line]:
+    """Lines of ``text`` with their common leading whitespace replaced by ``indent``; blank
+    lines at either end dropped."""
+    raw = text.split("\n")
+    while raw and not raw[0].strip():
+        raw.pop(0)
+    while raw and not raw[-1].strip():
+        raw.pop()
+    if not raw:
+        return []
+    first_col = len(raw[0]) - len(raw[0].lstrip())
+    rest = [ln for ln in raw[1:] if ln.strip()]
+    common = min([len(ln) - len(ln.lstrip()) for ln in rest] + [first_col]) if rest else first_col
+    out = []
+    for ln in raw:
+        if not ln.strip():
+            out.append(Line("", ""))
+        elif ln[:common].strip():
+            out.append(Line("", ln))
+        else:
+            out.append(Line(indent, ln[common:].rstrip()))
+    return out
+
+
+def _fors(node: c_ast.Node):
+    """For statements under ``node`` (itself included), in textual order."""
+    if isinstance(node, c_ast.For):
+        yield node
+    for _, child in node.children():
+        yield from _fors(child)
+
+
+def fors_in_order(node: c_ast.Node) -> list[c_ast.For]:
+    return list(_fors(node))
+
+
+# ---------------------------------------------------------------- the copies on the syntax tree
+
+def substituted(node: c_ast.Node, offs: Offsets, renames: dict[str, str]) -> c_ast.Node:
+    """A deep copy of ``node`` with each unrolled iterator ``i`` replaced by ``i + k`` (as the
+    copy's text spells it) and the renamed locals renamed: what the copy must parse to."""
+    new = copy.deepcopy(node)
+    subst = {it: k for it, k in offs if k != 0}
+
+    def fix(n: c_ast.Node) -> c_ast.Node:
+        if isinstance(n, c_ast.ID):
+            if n.name in subst:
+                k = subst[n.name]
+                return c_ast.BinaryOp("+" if k > 0 else "-", c_ast.ID(n.name), c_ast.Constant("int", str(abs(k))))
+            if n.name in renames:
+                return c_ast.ID(renames[n.name])
+            return n
+        if isinstance(n, c_ast.Decl) and n.name in renames:
+            n.name = renames[n.name]
+        if isinstance(n, c_ast.TypeDecl) and n.declname in renames:
+            n.declname = renames[n.declname]
+        if isinstance(n, c_ast.StructRef):  # the field name is not a variable
+            n.name = fix(n.name)
+            return n
+        for attr in n.__slots__:
+            if attr in ("coord", "__weakref__"):
+                continue
+            v = getattr(n, attr, None)
+            if isinstance(v, c_ast.Node):
+                setattr(n, attr, fix(v))
+            elif isinstance(v, list):
+                setattr(n, attr, [fix(x) if isinstance(x, c_ast.Node) else x for x in v])
+        return n
+
+    return fix(new)
+
+
+def expected_items(body: c_ast.Node, copies: tuple[Offsets, ...], facts: JamFacts) -> list[c_ast.Node]:
+    """The statements the body of one emitted loop must hold."""
+    items: list[c_ast.Node] = []
+    for n, offs in enumerate(copies):
+        renames = dict(zip(facts.renames, facts.fresh[n - 1])) if n >= 1 and facts.renames else {}
+        sub = substituted(body, offs, renames)
+        items += list(sub.block_items or []) if isinstance(sub, c_ast.Compound) else [sub]
+    return items
+
+
+def copy_count(plan: JamPlan) -> int:
+    return plan.copies
+
+
+def fresh_names(names: list[str], copies: int, taken: set[str]) -> tuple[tuple[str, ...], ...]:
+    """New names for the body's locals in copies 1 .. copies-1: ``t_1``, ``t_2``, ... (another
+    suffix if one is taken)."""
+    out = []
+    used = set(taken)
+    for n in range(1, copies):
+        row = []
+        for name in names:
+            for cand in itertools.chain([f"{name}_{n}"], (f"{name}_{n}_{k}" for k in itertools.count(2))):
+                if cand not in used:
+                    used.add(cand)
+                    row.append(cand)
+                    break
+        out.append(tuple(row))
+    return tuple(out)

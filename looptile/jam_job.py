@@ -1,0 +1,235 @@
+"""The jam and unroll jobs from file to new bytes: load, select, model, prove, copy the body,
+emit, parse again and compare every copy, splice.
+
+Library code: returns values, raises LooptileError subclasses, never exits.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from pycparser import c_ast, c_generator, c_parser
+
+from . import frontend, toolchain
+from .emit import Line, render
+from .emit_jam import (
+    CopySite,
+    JamEmitter,
+    JamFacts,
+    expected_items,
+    fors_in_order,
+    fresh_names,
+)
+from .errors import InternalError, Refusal
+from .frontend import TranslationUnit
+from .model import Nest
+from .pipeline import (
+    TileOptions,
+    _check_not_rewritten,
+    _macro_guard,
+    analyse,
+    describe_witness,
+    directive_removal,
+    guard_text,
+    select,
+)
+from .source import tokenize
+from .splice import Edit, apply_edits
+from .transform.jam import JamPlan, JamRequest, plan_jam, plan_unroll
+
+
+@dataclass(frozen=True)
+class JamOutcome:
+    path: str
+    original: bytes
+    new: bytes
+    nest: Nest
+    plan: JamPlan
+    notes: tuple[str, ...] = field(default=())
+
+
+def jam(tu: TranslationUnit, sel: str, req: JamRequest, opts: TileOptions) -> JamOutcome:
+    """Unroll-and-jam: each loop of ``req`` unrolled by its factor, the copies jammed into the
+    body of the innermost perfectly nested loop."""
+    return _job(tu, sel, opts, lambda nest: plan_jam(nest, req))
+
+
+def unroll(tu: TranslationUnit, sel: str, factor: int, opts: TileOptions) -> JamOutcome:
+    """Plain unrolling of the selected loop (its whole body copied ``factor`` times)."""
+    return _job(tu, sel, opts, lambda nest: plan_unroll(nest, factor))
+
+
+def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan) -> JamOutcome:
+    src = tu.source
+    site = select(tu, sel)
+    _check_not_rewritten(tu, site, opts)
+    nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive)
+    plan: JamPlan = make_plan(nest)
+    legality = analysis.check(list(plan.schedule))
+    if not legality.legal:
+        assert legality.witness is not None
+        what = "unrolling " + " and ".join(f"'{it}' by {u}" for it, u in plan.factors) + \
+            (" and jamming the copies" if plan.kind == "jam" else "")
+        head, details = describe_witness(what, legality.witness, nest)
+        raise Refusal(head, path=nest.path, line=nest.line, column=nest.col,
+                      source_line=src.line_text(nest.line), details=details)
+    if nest.macros_used and src.text[src.line_starts[nest.line - 1]: nest.start].strip():
+        raise Refusal("the nest needs a preprocessor guard for the macros its subscripts use, but it does not "
+                      "start its own line", path=nest.path, line=nest.line, column=nest.col)
+    target = nest.loop(plan.loops[-1])
+    body = _body_node(tu, target.for_offset)
+    renames = _check_body(tu, nest, plan, body)
+    wide = set()
+    for it, _ in plan.factors:
+        lp = nest.loop(it)
+        if lp.ctype.is_unsigned:
+            continue
+        low = lp.start.value if lp.direction > 0 else lp.limit.value
+        if not analysis.always_nonnegative(low, nest.iterators[: nest.iterators.index(it)]):
+            wide.add(it)
+    facts = JamFacts(frozenset(wide), tu.flags.c89, tuple(renames),
+                     fresh_names(renames, plan.copies, tu.identifiers) if renames else ())
+    em = JamEmitter(src, nest, plan, facts, body)
+    guard = guard_text(nest, plan, analysis, opts)
+    lines = [Line(em.base, ln) for ln in guard.split("\n")]
+    lines += [Line(em.base, c.replace("\r\n", "\n")) for c in nest.header_comments]
+    lines += em.lines()
+    text = render("nest.c.j2", lines=lines)
+    line_start = src.line_starts[src.line_col(nest.start)[0] - 1]
+    if src.text[line_start:nest.start].strip():
+        text = "\n" + em.base + text
+    mguard = _macro_guard(nest, src)
+    if mguard:
+        text = "\n".join(mguard.split("\n")[:1] + [em.base + g for g in mguard.split("\n")[1:]]) + "\n" + em.base + text
+    if src.newline != "\n":
+        text = text.replace("\n", src.newline)
+    removed = directive_removal(tu, opts.directive)
+    new = apply_edits(src.data, [Edit(nest.start, nest.end, text)] + removed)
+    shift = sum(src.line_col(e.end)[0] - src.line_col(e.start)[0] for e in removed)
+    _check_copies(tu, nest, text, new, shift, body, em.sites, facts)
+    return JamOutcome(src.path, src.data, new, nest, plan, tuple(f"assumed: {a}" for a in opts.assumptions))
+
+
+def _body_node(tu: TranslationUnit, for_offset: int) -> c_ast.Node:
+    for s in tu.loops():
+        if s.token_index is not None and tu.tokens[s.token_index].start == for_offset:
+            return s.node.stmt
+    raise InternalError("the innermost loop of the nest has no syntax tree node", path=tu.source.path)
+
+
+def _check_body(tu: TranslationUnit, nest: Nest, plan: JamPlan, body: c_ast.Node) -> list[str]:
+    """Refuse bodies whose textual copies would not mean the substituted body; return the
+    locals declared at the top of the body (renamed per copy)."""
+    src = tu.source
+    target = nest.loop(plan.loops[-1])
+    unrolled = {it for it, _ in plan.factors}
+
+    def refuse(msg: str, offset: int | None = None, node: c_ast.Node | None = None) -> Refusal:
+        if node is not None and node.coord is not None:
+            line, col = node.coord.line, node.coord.column or 1
+        else:
+            line, col = src.line_col(offset if offset is not None else target.body_start)
+        return Refusal(msg, path=nest.path, line=line, column=col, source_line=src.line_text(line))
+
+    for t in tu.all_between(target.body_start, target.body_end):
+        if t.kind == "pp":
+            raise refuse("a preprocessor line inside the body would be copied once per copy of the body; "
+                         "unrolling this loop is not supported", t.start)
+    for n in _walk(body):
+        if isinstance(n, c_ast.Decl) and n.name in unrolled:
+            raise refuse(f"the local '{n.name}' declared in the body shadows the unrolled iterator "
+                         f"'{n.name}'; rename it", node=n)
+        if isinstance(n, c_ast.Typedef):
+            raise refuse("a typedef inside the body would be declared once per copy", node=n)
+    renames: list[str] = []
+    if isinstance(body, c_ast.Compound) and plan.copies > 1:
+        for item in body.block_items or []:
+            if isinstance(item, c_ast.Decl):
+                if not item.name:
+                    raise refuse("a declaration without a name (a struct or enum type) in the body would be "
+                                 "declared once per copy", node=item)
+                renames.append(item.name)
+    if renames and tu.flags.c89:
+        raise refuse(f"the body declares {', '.join(renames)} and the file is C89: the copies would declare "
+                     "after statements", node=body)
+    watched = unrolled | set(renames)
+    for t in tu.code_between(target.body_start, target.body_end):
+        if t.kind == "id" and t.text in tu.macros:
+            hit = _macro_mentions(tu, t.text, watched)
+            if hit:
+                raise refuse(f"the macro '{t.text}' uses '{hit}' in its definition, so copies of the body made by "
+                             f"substituting '{hit}' in the text would not change it; pass '{hit}' to the macro as "
+                             "an argument or expand it", t.start)
+    return renames
+
+
+def _macro_mentions(tu: TranslationUnit, name: str, watched: set[str], seen: set[str] | None = None) -> str | None:
+    """A watched identifier that the macro ``name`` (or a macro it uses) names, outside its
+    own parameters."""
+    seen = seen if seen is not None else set()
+    if name in seen:
+        return None
+    seen.add(name)
+    value = tu.macros.get(name, "")
+    params: set[str] = set()
+    if value.startswith("\0function-like\0"):
+        rest = value[len("\0function-like\0"):]
+        plist, _, value = rest.partition(")")
+        params = {p.strip() for p in plist.split(",") if p.strip()}
+    for t in tokenize(value):
+        if t.kind != "id" or t.text in params:
+            continue
+        if t.text in watched:
+            return t.text
+        if t.text in tu.macros:
+            hit = _macro_mentions(tu, t.text, watched, seen)
+            if hit:
+                return hit
+    return None
+
+
+def _walk(node: c_ast.Node):
+    yield node
+    for _, child in node.children():
+        yield from _walk(child)
+
+
+def _check_copies(tu: TranslationUnit, nest: Nest, text: str, new: bytes, shift: int, body: c_ast.Node,
+                  sites: list[CopySite], facts: JamFacts) -> None:
+    """Preprocess and parse the rewritten region again; each copy of the body must be the
+    original body with the substitution done on the syntax tree. A difference is an internal
+    error: nothing is written."""
+    src = tu.source
+    pre = toolchain.preprocess_text(new, src.path, tu.flags)
+    first = nest.line - shift
+    last = first + text.count("\n")
+    region = [t for ln, t in frontend.main_file_lines(pre, "<stdin>") if first <= ln <= last]
+    typedefs = tu.cache["types"].typedefs if "types" in tu.cache else {}
+    prelude = "".join(f"typedef int {name};\n" for name in sorted(typedefs))
+    fors: list[c_ast.For] | None = None
+    try:
+        ast = c_parser.CParser().parse(prelude + "void looptile_region_check(void) {\n" + "\n".join(region) + "\n}\n",
+                                       "<region>")
+        fors = fors_in_order(ast.ext[-1].body)
+    except Exception:  # noqa: BLE001 - fall back to the whole file
+        pass
+    if fors is None:
+        try:
+            ast = c_parser.CParser().parse(pre, "<rewritten>")
+        except Exception as exc:
+            raise InternalError(f"the rewritten nest does not parse ({exc}); this is a looptile bug, please report "
+                                "it", path=src.path, line=nest.line, column=nest.col) from exc
+        fors = [f for ext in ast.ext if isinstance(ext, c_ast.FuncDef) and ext.decl.name == nest.function
+                for f in fors_in_order(ext.body)
+                if f.coord is not None and first <= f.coord.line <= last]
+    gen = c_generator.CGenerator()
+    for site in sites:
+        if site.for_index >= len(fors):
+            raise InternalError("the rewritten nest has fewer loops than emitted; this is a looptile bug",
+                                path=src.path, line=nest.line, column=nest.col)
+        got = fors[site.for_index].stmt
+        got_items = list(got.block_items or []) if isinstance(got, c_ast.Compound) else [got]
+        want = expected_items(body, site.copies, facts)
+        if len(got_items) != len(want) or any(gen.visit(a) != gen.visit(b) for a, b in zip(got_items, want)):
+            raise InternalError("a copy of the body does not parse to the substituted original; this is a looptile "
+                                "bug, please report it with the input file", path=src.path, line=nest.line,
+                                column=nest.col)

@@ -1,0 +1,116 @@
+"""Unroll-and-jam and plain unrolling: strip-mine loops by small factors and run the copies of
+the innermost body one after another.
+
+Input: the nest model and a request; output: a ``JamPlan`` with the loops it covers (from the
+nest's outermost loop down to the loop whose body is copied), the factors, and the schedule of
+the emitted code that deps.py proves.
+
+For a loop ``i`` unrolled by ``u`` (strips of ``u * step`` from its start) over the loops inside
+it, the emitted code runs a whole strip as ``[strip(i), ..., inner loops, i, body]`` -- the
+copies of ``i`` innermost -- and the last, partial strip (the remainder loop, which runs the
+copies one at a time) as ``[strip(i), i, ..., inner loops, body]``. Each unrolled loop adds one
+pair of schedule dimensions whose values depend on whether its strip is whole.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from ..errors import Refusal, UsageError
+from ..model import Nest, ScheduleDim
+
+MAX_COPIES = 256  # more body copies than this is almost certainly a typo in the factors
+
+
+@dataclass(frozen=True)
+class JamRequest:
+    factors: tuple[tuple[str, int], ...]  # (iterator, factor) as given
+
+
+@dataclass(frozen=True)
+class JamPlan:
+    loops: tuple[str, ...]  # the perfect loops the rewrite covers, outermost first
+    factors: tuple[tuple[str, int], ...]  # (iterator, factor >= 2), outermost first
+    kind: str  # "jam" (copies jammed into the innermost loop's body) or "unroll" (one loop)
+    schedule: tuple[ScheduleDim, ...]
+
+    def factor(self, iterator: str) -> int:
+        return dict(self.factors).get(iterator, 1)
+
+    @property
+    def copies(self) -> int:
+        n = 1
+        for _, u in self.factors:
+            n *= u
+        return n
+
+    def describe(self) -> str:
+        spec = ", ".join(f"{it} by {u}" for it, u in self.factors)
+        if self.kind == "unroll":
+            return f"unrolled {spec}, with a remainder loop"
+        return f"unrolled {spec} and jammed the copies into the body of loop '{self.loops[-1]}', " \
+               "with remainder loops"
+
+
+def plan_jam(nest: Nest, req: JamRequest) -> JamPlan:
+    """Unroll each named loop of the perfectly nested part by its factor and jam the copies
+    into the body of the innermost perfect loop."""
+    its = list(nest.iterators)
+    if not req.factors:
+        raise UsageError("--factors needs at least one LOOP=FACTOR, e.g. i=4")
+    seen: dict[str, int] = {}
+    for name, u in req.factors:
+        if name not in its:
+            raise UsageError(f"--factors names loop '{name}', which is not one of the perfectly nested loops "
+                             f"({', '.join(its)})", path=nest.path, line=nest.line, column=nest.col)
+        if name in seen:
+            raise UsageError(f"--factors names loop '{name}' twice")
+        if u < 2:
+            raise UsageError(f"the factor of '{name}' must be at least 2, not {u}")
+        seen[name] = u
+    return _plan(nest, tuple(its), tuple((it, seen[it]) for it in its if it in seen), "jam")
+
+
+def plan_unroll(nest: Nest, factor: int) -> JamPlan:
+    """Plain unrolling of the nest's outermost loop: its whole body, inner loops included,
+    copied ``factor`` times, with a remainder loop. It never changes the order of anything."""
+    if factor < 2:
+        raise UsageError(f"the unroll factor must be at least 2, not {factor}")
+    first = nest.perfect[0].iterator
+    return _plan(nest, (first,), ((first, factor),), "unroll")
+
+
+def _plan(nest: Nest, loops: tuple[str, ...], factors: tuple[tuple[str, int], ...], kind: str) -> JamPlan:
+    copies = 1
+    for _, u in factors:
+        copies *= u
+    if copies > MAX_COPIES:
+        raise UsageError(f"the factors make {copies} copies of the body; at most {MAX_COPIES} are allowed")
+    unrolled = dict(factors)
+    for k, it in enumerate(loops):
+        lp = nest.loop(it)
+        if lp.ctype.bits < 32:
+            raise Refusal(f"loop '{it}' has an iterator of type {lp.ctype.spelling}; in the copies, '{it} + 1' "
+                          "would have another type (int), so unrolling it is not supported",
+                          path=nest.path, line=lp.line, column=lp.col)
+        uses = (lp.start.value.names() | lp.limit.value.names()) & set(unrolled)
+        outer_unrolled = [u for u in uses if u in loops[:k]]
+        if outer_unrolled:
+            raise Refusal(f"the bounds of loop '{it}' depend on '{outer_unrolled[0]}', which is unrolled: its "
+                          f"copies would need different ranges of '{it}'; unroll only loops that the inner "
+                          "loops' bounds do not use", path=nest.path, line=lp.line, column=lp.col)
+    # Schedule: for each loop in order, its strip and its position in a partial strip; then,
+    # after the covered loops, the copies (the positions in whole strips), outermost first.
+    dims: list[ScheduleDim] = []
+    tail: list[ScheduleDim] = []
+    for it in loops:
+        lp = nest.loop(it)
+        u = unrolled.get(it)
+        if u is None:
+            dims.append(ScheduleDim(it))
+            continue
+        block = lp.step * u
+        dims.append(ScheduleDim(it, block=block, origin=lp.start.value))
+        dims.append(ScheduleDim(it, when=(it, block, False)))
+        tail.append(ScheduleDim(it, when=(it, block, True)))
+    rest = [ScheduleDim(lp.iterator) for lp in nest.perfect[len(loops):]]
+    return JamPlan(loops, factors, kind, tuple(dims + tail + rest))
