@@ -269,6 +269,11 @@ def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: 
             click.echo(line, err=True)
         if report.status != 0:
             sys.exit(report.status)
+    _deliver(file, outcome, as_diff, output, in_place)
+
+
+def _deliver(file: str, outcome, as_diff: bool, output: str | None, in_place: bool) -> None:
+    """Notes to stderr, then the result as a diff, to OUT, in place, or to stdout."""
     for note in outcome.notes:
         click.echo(f"{file}:{outcome.nest.line}:{outcome.nest.col}: note: {note}", err=True)
     if as_diff:
@@ -286,6 +291,108 @@ def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: 
         sys.stdout.flush()
         sys.stdout.buffer.write(outcome.new)
         sys.stdout.flush()
+
+
+def _parse_factors(spec: str) -> tuple[tuple[str, int], ...]:
+    out = []
+    for item in spec.split(","):
+        name, eq, value = item.strip().partition("=")
+        try:
+            n = int(value)
+        except ValueError:
+            n = None
+        if not eq or not name.strip() or n is None:
+            raise UsageError(f"--factors item '{item.strip()}' is not LOOP=FACTOR (e.g. i=4)")
+        out.append((name.strip(), n))
+    return tuple(out)
+
+
+def _copy_command(kind: str, file: str, nest: str, spec: str, kw: dict) -> str:
+    parts = ["looptile", kind, file, "--nest", nest, "--factors" if kind == "jam" else "--factor", spec]
+    if kw.get("compile_db"):
+        parts += ["--compile-db", kw["compile_db"]]
+    else:
+        parts += list(_flags(file, kw).args)
+    return " ".join(shlex.quote(p) for p in parts)
+
+
+def output_options(f):
+    opts = [
+        click.option("--diff", "as_diff", is_flag=True, help="Print a unified diff instead of the file."),
+        click.option("-o", "--output", metavar="OUT", help="Write the result to OUT."),
+        click.option("--in-place", is_flag=True, help="Replace FILE (atomically, mode kept)."),
+        click.option("--force", is_flag=True, help="Rewrite a nest that looptile already rewrote."),
+        click.option("--verify", "check", is_flag=True,
+                     help="Compile and run both versions first (as the verify command); write nothing if they "
+                          "differ."),
+    ]
+    for o in reversed(opts):
+        f = o(f)
+    return f
+
+
+def _copy_job(kind: str, file: str, nest: str, spec: str, as_diff: bool, output: str | None, in_place: bool,
+              force: bool, check: bool, kw: dict) -> None:
+    from . import jam_job
+    try:
+        if sum([as_diff, bool(output), in_place]) > 1:
+            raise UsageError("choose one of --diff, -o OUT and --in-place")
+        opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), force,
+                                    _copy_command(kind, file, nest, spec, kw))
+        if kind == "jam":
+            factors = _parse_factors(spec)
+            sizes = tuple(u for _, u in factors)
+        else:
+            try:
+                sizes = (int(spec),)
+            except ValueError:
+                raise UsageError(f"--factor must be an integer, not '{spec}'") from None
+        tu = pipeline.load(file, _flags(file, kw))
+        if kind == "jam":
+            outcome = jam_job.jam(tu, nest, jam_job.JamRequest(factors), opts)
+        else:
+            outcome = jam_job.unroll(tu, nest, sizes[0], opts)
+        report = verify(tu, outcome.new, outcome.nest.function, _verify_options(kw, sizes)) if check else None
+    except LooptileError as exc:
+        if exc.path is None:
+            exc.path = file
+        raise
+    if report is not None:
+        for line in report.lines:
+            click.echo(line, err=True)
+        if report.status != 0:
+            sys.exit(report.status)
+    _deliver(file, outcome, as_diff, output, in_place)
+
+
+@main.command()
+@click.argument("file")
+@click.option("--nest", "nest", required=True, metavar="SEL", help="L<line>, FUNC or FUNC:K.")
+@click.option("--factors", "factors", required=True, metavar="SPEC",
+              help="Unroll factors of outer loops, e.g. i=4 or i=4,j=2; the copies are jammed into the "
+                   "innermost loop's body.")
+@output_options
+@check_options
+@frontend_options
+@reporting
+def jam(file: str, nest: str, factors: str, as_diff: bool, output: str | None, in_place: bool, force: bool,
+        check: bool, **kw) -> None:
+    """Unroll-and-jam (register tiling), if the analysis proves it legal."""
+    _copy_job("jam", file, nest, factors, as_diff, output, in_place, force, check, kw)
+
+
+@main.command()
+@click.argument("file")
+@click.option("--nest", "nest", required=True, metavar="SEL", help="L<line>, FUNC or FUNC:K: the loop to unroll.")
+@click.option("--factor", "factor", required=True, metavar="N", help="How many copies of the body per iteration.")
+@output_options
+@check_options
+@frontend_options
+@reporting
+def unroll(file: str, nest: str, factor: str, as_diff: bool, output: str | None, in_place: bool, force: bool,
+           check: bool, **kw) -> None:
+    """Plain unrolling of one loop (its body, inner loops included, copied N times, with a remainder loop)."""
+    _copy_job("unroll", file, nest, factor, as_diff, output, in_place, force, check, kw)
 
 
 if __name__ == "__main__":  # pragma: no cover
