@@ -248,7 +248,8 @@ class BodyWalker:
             affs = [Affine.symbol(i) for i in ctx.iterators[: info.ndims - len(affs)]] + affs
         if write and not subs:
             ctx.written.setdefault(name, node)
-        self.accesses.append(Access(key, tuple(affs), write))
+        at = (base.coord.line, base.coord.column) if base.coord is not None and base.coord.column else None
+        self.accesses.append(Access(key, tuple(affs), write, at))
 
     def array_of(self, name: str, node: c_ast.Node, nsubs: int) -> tuple[str, ArrayInfo]:
         ctx = self.ctx

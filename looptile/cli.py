@@ -309,6 +309,8 @@ def _parse_factors(spec: str) -> tuple[tuple[str, int], ...]:
 
 def _copy_command(kind: str, file: str, nest: str, spec: str, kw: dict) -> str:
     parts = ["looptile", kind, file, "--nest", nest, "--factors" if kind == "jam" else "--factor", spec]
+    if kw.get("scalarize"):
+        parts.append("--scalarize")
     if kw.get("compile_db"):
         parts += ["--compile-db", kw["compile_db"]]
     else:
@@ -332,7 +334,7 @@ def output_options(f):
 
 
 def _copy_job(kind: str, file: str, nest: str, spec: str, as_diff: bool, output: str | None, in_place: bool,
-              force: bool, check: bool, kw: dict) -> None:
+              force: bool, check: bool, kw: dict, scalarize: bool = False) -> None:
     from . import jam_job
     try:
         if sum([as_diff, bool(output), in_place]) > 1:
@@ -349,7 +351,7 @@ def _copy_job(kind: str, file: str, nest: str, spec: str, as_diff: bool, output:
                 raise UsageError(f"--factor must be an integer, not '{spec}'") from None
         tu = pipeline.load(file, _flags(file, kw))
         if kind == "jam":
-            outcome = jam_job.jam(tu, nest, jam_job.JamRequest(factors), opts)
+            outcome = jam_job.jam(tu, nest, jam_job.JamRequest(factors), opts, scalarize)
         else:
             outcome = jam_job.unroll(tu, nest, sizes[0], opts)
         report = verify(tu, outcome.new, outcome.nest.function, _verify_options(kw, sizes)) if check else None
@@ -371,14 +373,17 @@ def _copy_job(kind: str, file: str, nest: str, spec: str, as_diff: bool, output:
 @click.option("--factors", "factors", required=True, metavar="SPEC",
               help="Unroll factors of outer loops, e.g. i=4 or i=4,j=2; the copies are jammed into the "
                    "innermost loop's body.")
+@click.option("--scalarize", is_flag=True,
+              help="Keep elements that the innermost loop keeps touching (C[i][j] over k) in locals, where proven "
+                   "safe.")
 @output_options
 @check_options
 @frontend_options
 @reporting
-def jam(file: str, nest: str, factors: str, as_diff: bool, output: str | None, in_place: bool, force: bool,
-        check: bool, **kw) -> None:
+def jam(file: str, nest: str, factors: str, scalarize: bool, as_diff: bool, output: str | None, in_place: bool,
+        force: bool, check: bool, **kw) -> None:
     """Unroll-and-jam (register tiling), if the analysis proves it legal."""
-    _copy_job("jam", file, nest, factors, as_diff, output, in_place, force, check, kw)
+    _copy_job("jam", file, nest, factors, as_diff, output, in_place, force, check, kw, scalarize)
 
 
 @main.command()
@@ -393,6 +398,63 @@ def unroll(file: str, nest: str, factor: str, as_diff: bool, output: str | None,
            check: bool, **kw) -> None:
     """Plain unrolling of one loop (its body, inner loops included, copied N times, with a remainder loop)."""
     _copy_job("unroll", file, nest, factor, as_diff, output, in_place, force, check, kw)
+
+
+@main.command(name="apply")
+@click.argument("paths", nargs=-1, required=True)
+@click.option("--diff", "as_diff", is_flag=True, help="Print one unified diff for every file changed.")
+@click.option("-o", "--output", "outdir", metavar="OUTDIR",
+              help="Write every file to OUTDIR, mirroring the tree below the common parent of the PATHs.")
+@click.option("--in-place", is_flag=True, help="Rewrite the changed files (atomically, mode kept).")
+@click.option("--jobs", "-j", "jobs", type=click.IntRange(min=1), default=None,
+              help="Files processed in parallel (default: the number of cores).")
+@click.option("--report", "report_path", metavar="FILE.json", help="Write the outcome of every directive as JSON.")
+@click.option("--verify", "check", is_flag=True,
+              help="Compile and run each rewrite against the original first (as verify); a difference refuses it.")
+@check_options
+@frontend_options
+@reporting
+def apply_cmd(paths: tuple[str, ...], as_diff: bool, outdir: str | None, in_place: bool, jobs: int | None,
+              report_path: str | None, check: bool, **kw) -> None:
+    """Carry out the loop-transformation directives (#pragma omp tile/unroll, #pragma looptile) in
+    the files and directories given (recursively, .c files); refused ones are left as they are."""
+    from . import batch
+    if sum([as_diff, bool(outdir), in_place]) > 1:
+        raise UsageError("choose one of --diff, -o OUTDIR and --in-place")
+    base = batch.common_base(list(paths))
+    if outdir and os.path.realpath(outdir) == base:
+        raise UsageError(f"-o {outdir} is the input directory itself; use --in-place to rewrite the files there")
+    files = batch.c_files(list(paths), exclude=outdir)
+    opts = batch.ApplyOptions(from_options(kw["includes"], kw["isystem"], kw["defines"], kw["undefines"],
+                                           kw["include_files"], kw["std"]), kw.get("compile_db"),
+                              frozenset(kw["assume_pure"]), tuple(kw["assumptions"]),
+                              _verify_options(kw, ()) if check else None)
+    if sys.stderr.isatty() and len(files) >= 8:
+        with click.progressbar(length=len(files), label="looptile apply", file=sys.stderr) as bar:
+            outcomes = batch.run(files, opts, jobs or batch.default_jobs(), lambda o: bar.update(1))
+    else:
+        outcomes = batch.run(files, opts, jobs or batch.default_jobs())
+    for o in outcomes:
+        for line in batch.messages(o):
+            click.echo(line, err=True)
+    if as_diff:
+        sys.stdout.flush()
+        for o in outcomes:
+            if o.status == "rewritten":
+                rel = os.path.relpath(o.path) if not os.path.relpath(o.path).startswith("..") else o.path
+                sys.stdout.buffer.write(unified_diff(rel, o.original, o.new).encode("latin-1"))
+        sys.stdout.flush()
+    for o in outcomes:
+        if outdir and not o.unread:
+            target = batch.mirrored(base, outdir, o.path)
+            os.makedirs(os.path.dirname(target), exist_ok=True)
+            write_atomic(target, o.new, mode_from=o.path)
+        elif in_place and o.status == "rewritten":
+            write_atomic(o.path, o.new)
+    if report_path:
+        write_atomic(report_path, (json.dumps(batch.report_json(outcomes), indent=2) + "\n").encode())
+    click.echo(batch.summary_table(outcomes), err=as_diff)
+    sys.exit(batch.exit_status(batch.totals(outcomes)))
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import islpy as isl
 
 from .errors import UsageError
-from .model import Affine, Condition, Loop, Nest, Obligation, ScheduleDim, Statement
+from .model import Access, Affine, Condition, Loop, Nest, Obligation, ScheduleDim, Statement
 
 _ctx = isl.DEFAULT_CONTEXT
 
@@ -372,6 +372,14 @@ class NestAnalysis:
         return arr.name + "".join(f"[{i}]" for i in idx)
 
     # -- other questions
+    def may_touch(self, s: Statement, access: Access, element: tuple[Affine, ...]) -> bool:
+        """Can an instance of ``s`` (in its domain) make ``access`` touch ``element`` (affine in
+        the iterators of that instance and the parameters)?"""
+        cons = " and ".join(f"{self._r(a)} = {self._r(e)}" for a, e in zip(access.subscripts, element)) or "true"
+        vars_ = ", ".join(_isl_name(i) for i in s.loops)
+        probe = isl.Set(self._prefix() + f"{{ {s.name}[{vars_}] : {cons} }}", context=_ctx)
+        return not self.domains[s.name].intersect(probe).is_empty()
+
     def always_nonnegative(self, expr: Affine, loops: tuple[str, ...]) -> bool:
         """Is ``expr >= 0`` wherever the ``loops`` have values in the nest?"""
         return self.chain_set("X", loops, f"{self._r(expr)} < 0").is_empty()

@@ -32,6 +32,22 @@ class CopySite:
 
     for_index: int
     copies: tuple[Offsets, ...]
+    scalars: tuple[ScalarGroup, ...] = ()
+
+
+@dataclass(frozen=True)
+class ScalarGroup:
+    """An element that one run of the innermost loop keeps in a local: ``name`` replaces the
+    references (copy index, offset of the array's name) of the copies; it is loaded before
+    the loop and stored after it."""
+
+    name: str
+    ctype: str
+    element: str  # the element in C, for the load and the store
+    load: bool
+    store: bool
+    refs: frozenset[tuple[int, int]]
+    nodes: frozenset[tuple[int, int, int]] = frozenset()  # (copy index, line, column) of the references
 
 
 @dataclass(frozen=True)
@@ -43,7 +59,8 @@ class JamFacts:
 
 
 class JamEmitter:
-    def __init__(self, src: SourceFile, nest: Nest, plan: JamPlan, facts: JamFacts, body: c_ast.Node) -> None:
+    def __init__(self, src: SourceFile, nest: Nest, plan: JamPlan, facts: JamFacts, body: c_ast.Node,
+                 scalarize=None) -> None:
         self.src, self.nest, self.plan, self.facts = src, nest, plan, facts
         self.unit = src.indent_unit
         self.base = src.indent_of(nest.start)
@@ -53,6 +70,8 @@ class JamEmitter:
         self.for_count = 0  # for statements emitted so far, in textual order
         self.sites: list[CopySite] = []
         self.inner_fors = sum(1 for _ in _fors(body))
+        # copies -> the elements kept in locals during one run of the innermost loop
+        self.scalarize = scalarize
 
     # -- headers
     def _header(self, lp: Loop) -> str:
@@ -110,12 +129,23 @@ class JamEmitter:
             if self.plan.factor(self.loops[k + 1].iterator) > 1:  # its block opens on this line
                 return [Line(ind, header + " {")] + self._strips(k + 1, copies, depth + 1) + [Line(ind, "}")]
             return [Line(ind, header)] + self._level(k + 1, copies, depth + 1)
-        self.sites.append(CopySite(self.for_count - 1, copies))
-        out = [Line(ind, header + " {")]
+        groups = tuple(self.scalarize(copies)) if self.scalarize is not None else ()
+        self.sites.append(CopySite(self.for_count - 1, copies, groups))
+        out: list[Line] = []
+        if groups:
+            lp = self.loops[k]
+            out.append(Line(ind, f"if ({lp.start.text} {lp.op} {paren(lp.limit.text)}) {{"))
+            out += [Line(ind + self.unit, f"{g.ctype} {g.name} = {g.element};" if g.load else f"{g.ctype} {g.name};")
+                    for g in groups]
+            ind = ind + self.unit
+        out.append(Line(ind, header + " {"))
         for n, offs in enumerate(copies):
-            out += _reindent(self.copy_text(offs, n), ind + self.unit)
+            out += _reindent(self.copy_text(offs, n, groups), ind + self.unit)
             self.for_count += self.inner_fors
         out.append(Line(ind, "}"))
+        if groups:
+            out += [Line(ind, f"{g.element} = {g.name};") for g in groups if g.store]
+            out.append(Line(ind[: -len(self.unit)], "}"))
         return out
 
     def _compound(self) -> bool:
@@ -130,15 +160,26 @@ class JamEmitter:
             return toks[0].end, toks[-1].start
         return t.body_start, t.body_end
 
-    def copy_text(self, offs: Offsets, n: int) -> str:
-        start, end = self.body_range()
+    def copy_text(self, offs: Offsets, n: int, groups: tuple[ScalarGroup, ...] = (),
+                  span: tuple[int, int] | None = None) -> str:
+        start, end = span if span is not None else self.body_range()
         text = self.src.text
         subst = {it: k for it, k in offs if k != 0}
         renames = dict(zip(self.facts.renames, self.facts.fresh[n - 1])) if n >= 1 and self.facts.renames else {}
+        kept = {off: g.name for g in groups for (c, off) in g.refs if c == n}
         out: list[str] = []
         pos = start
         prev: Token | None = None
+        skip_to = -1
         for t in tokenize(text, start, end):
+            if t.start < skip_to:
+                continue
+            if t.start in kept:  # an element kept in a local: the whole reference becomes its name
+                out.append(text[pos:t.start])
+                out.append(kept[t.start])
+                pos = skip_to = reference_end(text, t.start, end)
+                prev = None
+                continue
             if t.kind == "id" and not (prev is not None and prev.text in (".", "->")):
                 new = None
                 if t.text in subst:
@@ -160,6 +201,26 @@ class JamEmitter:
                 prev = t
         out.append(text[pos:end])
         return "".join(out).replace("\r\n", "\n")
+
+
+def reference_end(text: str, start: int, end: int) -> int:
+    """The end of the array reference ``name[...][...]`` whose name starts at ``start``."""
+    toks = [t for t in tokenize(text, start, end) if t.kind != "comment"]
+    pos = toks[0].end
+    k = 1
+    while k < len(toks) and toks[k].text == "[":
+        depth = 0
+        while k < len(toks):
+            if toks[k].text == "[":
+                depth += 1
+            elif toks[k].text == "]":
+                depth -= 1
+                if depth == 0:
+                    break
+            k += 1
+        pos = toks[k].end
+        k += 1
+    return pos
 
 
 def _reindent(text: str, indent: str) -> list[Line]:
@@ -200,13 +261,22 @@ def fors_in_order(node: c_ast.Node) -> list[c_ast.For]:
 
 # ---------------------------------------------------------------- the copies on the syntax tree
 
-def substituted(node: c_ast.Node, offs: Offsets, renames: dict[str, str]) -> c_ast.Node:
+def substituted(node: c_ast.Node, offs: Offsets, renames: dict[str, str],
+                kept: dict[tuple[int, int], str] | None = None) -> c_ast.Node:
     """A deep copy of ``node`` with each unrolled iterator ``i`` replaced by ``i + k`` (as the
-    copy's text spells it) and the renamed locals renamed: what the copy must parse to."""
+    copy's text spells it), the renamed locals renamed and the references kept in locals
+    (by the line and column of the array's name) replaced: what the copy must parse to."""
     new = copy.deepcopy(node)
     subst = {it: k for it, k in offs if k != 0}
+    kept = kept or {}
 
     def fix(n: c_ast.Node) -> c_ast.Node:
+        if isinstance(n, c_ast.ArrayRef) and kept:
+            base = n
+            while isinstance(base, c_ast.ArrayRef):
+                base = base.name
+            if isinstance(base, c_ast.ID) and base.coord is not None and (base.coord.line, base.coord.column) in kept:
+                return c_ast.ID(kept[(base.coord.line, base.coord.column)])
         if isinstance(n, c_ast.ID):
             if n.name in subst:
                 k = subst[n.name]
@@ -234,12 +304,14 @@ def substituted(node: c_ast.Node, offs: Offsets, renames: dict[str, str]) -> c_a
     return fix(new)
 
 
-def expected_items(body: c_ast.Node, copies: tuple[Offsets, ...], facts: JamFacts) -> list[c_ast.Node]:
+def expected_items(body: c_ast.Node, copies: tuple[Offsets, ...], facts: JamFacts,
+                   scalars: tuple[ScalarGroup, ...] = ()) -> list[c_ast.Node]:
     """The statements the body of one emitted loop must hold."""
     items: list[c_ast.Node] = []
     for n, offs in enumerate(copies):
         renames = dict(zip(facts.renames, facts.fresh[n - 1])) if n >= 1 and facts.renames else {}
-        sub = substituted(body, offs, renames)
+        kept = {(line, col): g.name for g in scalars for (c, line, col) in g.nodes if c == n}
+        sub = substituted(body, offs, renames, kept)
         items += list(sub.block_items or []) if isinstance(sub, c_ast.Compound) else [sub]
     return items
 

@@ -5,7 +5,7 @@ Library code: returns values, raises LooptileError subclasses, never exits.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 from pycparser import c_ast, c_generator, c_parser
 
@@ -15,13 +15,16 @@ from .emit_jam import (
     CopySite,
     JamEmitter,
     JamFacts,
+    Offsets,
+    ScalarGroup,
     expected_items,
     fors_in_order,
     fresh_names,
+    reference_end,
 )
 from .errors import InternalError, Refusal
 from .frontend import TranslationUnit
-from .model import Nest
+from .model import Affine, Nest
 from .pipeline import (
     TileOptions,
     _check_not_rewritten,
@@ -34,7 +37,7 @@ from .pipeline import (
 )
 from .source import tokenize
 from .splice import Edit, apply_edits
-from .transform.jam import JamPlan, JamRequest, plan_jam, plan_unroll
+from .transform.jam import JamPlan, JamRequest, plan_jam, plan_unroll  # noqa: F401 - JamRequest re-exported
 
 
 @dataclass(frozen=True)
@@ -47,10 +50,11 @@ class JamOutcome:
     notes: tuple[str, ...] = field(default=())
 
 
-def jam(tu: TranslationUnit, sel: str, req: JamRequest, opts: TileOptions) -> JamOutcome:
+def jam(tu: TranslationUnit, sel: str, req: JamRequest, opts: TileOptions, scalarize: bool = False) -> JamOutcome:
     """Unroll-and-jam: each loop of ``req`` unrolled by its factor, the copies jammed into the
-    body of the innermost perfectly nested loop."""
-    return _job(tu, sel, opts, lambda nest: plan_jam(nest, req))
+    body of the innermost perfectly nested loop; with ``scalarize``, elements that one run of
+    that loop keeps touching are kept in locals."""
+    return _job(tu, sel, opts, lambda nest: plan_jam(nest, req), scalarize)
 
 
 def unroll(tu: TranslationUnit, sel: str, factor: int, opts: TileOptions) -> JamOutcome:
@@ -58,12 +62,14 @@ def unroll(tu: TranslationUnit, sel: str, factor: int, opts: TileOptions) -> Jam
     return _job(tu, sel, opts, lambda nest: plan_unroll(nest, factor))
 
 
-def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan) -> JamOutcome:
+def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan, scalarize: bool = False) -> JamOutcome:
     src = tu.source
     site = select(tu, sel)
     _check_not_rewritten(tu, site, opts)
     nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive)
     plan: JamPlan = make_plan(nest)
+    if scalarize:
+        plan = replace(plan, scalarize=True)
     legality = analysis.check(list(plan.schedule))
     if not legality.legal:
         assert legality.witness is not None
@@ -89,6 +95,13 @@ def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan) -> JamOutc
     facts = JamFacts(frozenset(wide), tu.flags.c89, tuple(renames),
                      fresh_names(renames, plan.copies, tu.identifiers) if renames else ())
     em = JamEmitter(src, nest, plan, facts, body)
+    if scalarize:
+        if plan.factor(target.iterator) > 1:
+            raise Refusal("--scalarize keeps elements in locals over the runs of the innermost loop "
+                          f"'{target.iterator}', which is itself unrolled here; leave it out of --factors",
+                          path=nest.path,
+                          line=target.line, column=target.col)
+        em.scalarize = _scalarizer(tu, nest, plan, analysis, em, renames)
     guard = guard_text(nest, plan, analysis, opts)
     lines = [Line(em.base, ln) for ln in guard.split("\n")]
     lines += [Line(em.base, c.replace("\r\n", "\n")) for c in nest.header_comments]
@@ -106,7 +119,92 @@ def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan) -> JamOutc
     new = apply_edits(src.data, [Edit(nest.start, nest.end, text)] + removed)
     shift = sum(src.line_col(e.end)[0] - src.line_col(e.start)[0] for e in removed)
     _check_copies(tu, nest, text, new, shift, body, em.sites, facts)
-    return JamOutcome(src.path, src.data, new, nest, plan, tuple(f"assumed: {a}" for a in opts.assumptions))
+    notes = [f"assumed: {a}" for a in opts.assumptions]
+    if scalarize:
+        kept = sorted({g.element for site in em.sites for g in site.scalars})
+        notes.append(f"kept in locals during each run of loop '{target.iterator}': "
+                     + (", ".join(kept[:12]) or "nothing") + (", ..." if len(kept) > 12 else ""))
+    return JamOutcome(src.path, src.data, new, nest, plan, tuple(notes))
+
+
+def _shift(a: Affine, offs: dict[str, int]) -> Affine:
+    """``a`` with each iterator x replaced by x + offs[x]."""
+    return a + Affine(const=sum(a.coeff(x) * k for x, k in offs.items()))
+
+
+def _scalarizer(tu: TranslationUnit, nest: Nest, plan: JamPlan, analysis, em: JamEmitter, renames: list[str]):
+    """For one run of the innermost loop with the given copies: the elements to keep in locals.
+
+    An element qualifies when its subscripts use only the loops outside the innermost one, one
+    reference to it runs unconditionally in every iteration (so the load and the store touch an
+    element the original touches whenever the loop runs), and the analysis proves that no other
+    access of the run (any copy, any statement) can touch it."""
+    src = tu.source
+    target = nest.loop(plan.loops[-1])
+    fixed = set(nest.iterators[: nest.iterators.index(target.iterator)])
+    varying = (set(nest.iterators) | {lp.iterator for lp in nest.inner}) - fixed
+    perfect = tuple(nest.iterators)
+    refs = []
+    for st in nest.statements:
+        for a in st.accesses:
+            info = nest.array(a.array)
+            off = None
+            if a.at is not None and not info.local:
+                line, col = a.at
+                cand = src.line_starts[line - 1] + col - 1
+                if target.body_start <= cand < target.body_end and \
+                        src.text[cand:cand + len(info.name)] == info.name and \
+                        not (src.text[cand + len(info.name): cand + len(info.name) + 1].isalnum()
+                             or src.text[cand + len(info.name): cand + len(info.name) + 1] == "_"):
+                    off = cand
+            refs.append((st, a, off))
+    taken = set(tu.identifiers) | set(renames)
+
+    def groups(copies: tuple[Offsets, ...]) -> list[ScalarGroup]:
+        cand: dict[tuple, list] = {}
+        for n, offs in enumerate(copies):
+            d = dict(offs)
+            for st, a, off in refs:
+                if off is None or nest.array(a.array).local:
+                    continue
+                if any(x in varying for sub in a.subscripts for x in sub.names()):
+                    continue
+                key = (a.array, tuple(_shift(sub, d) for sub in a.subscripts))
+                cand.setdefault(key, []).append((n, st, a, off))
+        out: list[ScalarGroup] = []
+        used = set(taken)
+        for (arr, element), members in cand.items():
+            info = nest.array(arr)
+            if not info.elem.spelling or not any(not st.guards and st.loops == perfect for _, st, _, _ in members):
+                continue
+            mine = {(n, off) for n, _, _, off in members}
+            safe = True
+            for n2, offs2 in enumerate(copies):
+                back = {x: -k for x, k in offs2}
+                for st, a, off in refs:
+                    if a.array != arr or (off is not None and (n2, off) in mine):
+                        continue
+                    if analysis.may_touch(st, a, tuple(_shift(e, back) for e in element)):
+                        safe = False
+                        break
+                if not safe:
+                    break
+            if not safe:
+                continue
+            n0, _, _, off0 = members[0]
+            text = em.copy_text(copies[n0], n0, (), (off0, reference_end(src.text, off0, target.body_end)))
+            k = 0
+            while f"{info.name}_{k}" in used:
+                k += 1
+            name = f"{info.name}_{k}"
+            used.add(name)
+            writes = [st for _, st, a, _ in members if a.write]
+            load = any(not a.write for _, _, a, _ in members) or any(st.guards or st.loops != perfect for st in writes)
+            out.append(ScalarGroup(name, info.elem.spelling, text, load, bool(writes),
+                                   frozenset(mine), frozenset((n, a.at[0], a.at[1]) for n, _, a, _ in members)))
+        return out
+
+    return groups
 
 
 def _body_node(tu: TranslationUnit, for_offset: int) -> c_ast.Node:
@@ -228,7 +326,7 @@ def _check_copies(tu: TranslationUnit, nest: Nest, text: str, new: bytes, shift:
                                 path=src.path, line=nest.line, column=nest.col)
         got = fors[site.for_index].stmt
         got_items = list(got.block_items or []) if isinstance(got, c_ast.Compound) else [got]
-        want = expected_items(body, site.copies, facts)
+        want = expected_items(body, site.copies, facts, site.scalars)
         if len(got_items) != len(want) or any(gen.visit(a) != gen.visit(b) for a, b in zip(got_items, want)):
             raise InternalError("a copy of the body does not parse to the substituted original; this is a looptile "
                                 "bug, please report it with the input file", path=src.path, line=nest.line,

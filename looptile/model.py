@@ -103,6 +103,7 @@ class Access:
     array: str  # ArrayInfo.key
     subscripts: tuple[Affine, ...]
     write: bool
+    at: tuple[int, int] | None = None  # line and column of the array's name, as the parser saw it
 
 
 @dataclass(frozen=True)

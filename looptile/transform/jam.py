@@ -32,6 +32,7 @@ class JamPlan:
     factors: tuple[tuple[str, int], ...]  # (iterator, factor >= 2), outermost first
     kind: str  # "jam" (copies jammed into the innermost loop's body) or "unroll" (one loop)
     schedule: tuple[ScheduleDim, ...]
+    scalarize: bool = False  # elements invariant in the innermost loop kept in locals where proven safe
 
     def factor(self, iterator: str) -> int:
         return dict(self.factors).get(iterator, 1)
@@ -47,8 +48,9 @@ class JamPlan:
         spec = ", ".join(f"{it} by {u}" for it, u in self.factors)
         if self.kind == "unroll":
             return f"unrolled {spec}, with a remainder loop"
+        kept = "; elements that loop keeps touching are held in locals" if self.scalarize else ""
         return f"unrolled {spec} and jammed the copies into the body of loop '{self.loops[-1]}', " \
-               "with remainder loops"
+               f"with remainder loops{kept}"
 
 
 def plan_jam(nest: Nest, req: JamRequest) -> JamPlan:
