@@ -26,16 +26,6 @@ Offsets = tuple[tuple[str, int], ...]  # (iterator, value added in this copy), o
 
 
 @dataclass(frozen=True)
-class CopySite:
-    """The body of the ``for_index``-th emitted for statement (in textual order, the for
-    statements inside the copies included) holds these copies, in this order."""
-
-    for_index: int
-    copies: tuple[Offsets, ...]
-    scalars: tuple[ScalarGroup, ...] = ()
-
-
-@dataclass(frozen=True)
 class ScalarGroup:
     """An element that one run of the innermost loop keeps in a local: ``name`` replaces the
     references (copy index, offset of the array's name) of the copies; it is loaded before
@@ -50,6 +40,14 @@ class ScalarGroup:
     nodes: frozenset[tuple[int, int, int]] = frozenset()  # (copy index, line, column) of the references
 
 
+class CopySite:
+    """The loop whose header is the Line ``header`` holds these copies of the body, in this
+    order (an object, so that the Line can be found again by identity)."""
+
+    def __init__(self, header: Line, copies: tuple[Offsets, ...], scalars: tuple[ScalarGroup, ...]) -> None:
+        self.header, self.copies, self.scalars = header, copies, scalars
+
+
 @dataclass(frozen=True)
 class JamFacts:
     wide_distance: frozenset[str] = frozenset()  # loops whose `limit - i` must be computed unsigned
@@ -58,90 +56,127 @@ class JamFacts:
     fresh: tuple[tuple[str, ...], ...] = ()  # per copy index >= 1: the new names of ``renames``
 
 
+@dataclass(frozen=True)
+class LoopForm:
+    """How one covered loop is emitted. Not unrolled (factor 1): ``header``. Unrolled: an
+    optional declaration of its iterator, ``main`` over whole strips with copies, and
+    ``remainder`` (None when every strip is whole) continuing from where ``main`` stopped."""
+
+    iterator: str
+    factor: int = 1
+    header: str = ""
+    decl: str | None = None
+    main: str = ""
+    remainder: str | None = None
+    offset: int = 1  # what the iterator advances by per iteration (step, negative counting down)
+    runs: str = ""  # a C condition that holds when the loop runs at least once
+
+
+def loop_header(src: SourceFile, lp: Loop) -> str:
+    toks = [t for t in tokenize(src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
+    return spelled(src.text, toks)
+
+
+def step_text(src: SourceFile, lp: Loop) -> str:
+    toks = [t for t in tokenize(src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
+    semis = [k for k, t in enumerate(toks) if t.text == ";"]
+    return spelled(src.text, toks[semis[-1] + 1:-1])
+
+
+def distance(lp: Loop, wide: bool, far: str | None = None) -> str:
+    """The distance from the iterator to the loop's bound, in a type where it cannot overflow."""
+    far, v = paren(lp.limit.text) if far is None else far, lp.iterator
+    if wide:
+        u = unsigned_of(lp)
+        return f"({u}){far} - ({u}){v}" if lp.direction > 0 else f"({u}){v} - ({u}){far}"
+    return f"{far} - {v}" if lp.direction > 0 else f"{v} - {far}"
+
+
+def plain_forms(src: SourceFile, nest: Nest, plan: JamPlan, facts: JamFacts) -> list[LoopForm]:
+    """The covered loops of a nest unrolled in place (no tiling)."""
+    out = []
+    for it in plan.loops:
+        lp = nest.loop(it)
+        u = plan.factor(it)
+        runs = f"{lp.start.text} {lp.op} {paren(lp.limit.text)}"
+        if u == 1:
+            out.append(LoopForm(it, header=loop_header(src, lp), runs=runs))
+            continue
+        main = render("main_loop.c.j2", name=it, start=lp.start.text, op=lp.op, limit=paren(lp.limit.text),
+                      dist=distance(lp, it in facts.wide_distance), full=literal(full_form(lp, u), lp),
+                      span=literal(lp.step * u, lp), sign="+" if lp.direction > 0 else "-")
+        rem = render("jam_remainder.c.j2", name=it, op=lp.op, limit=paren(lp.limit.text), step=step_text(src, lp))
+        out.append(LoopForm(it, u, decl=f"{lp.ctype.spelling} {it};" if lp.declared_in_for else None, main=main,
+                            remainder=rem, offset=lp.step * lp.direction, runs=runs))
+    return out
+
+
 class JamEmitter:
-    def __init__(self, src: SourceFile, nest: Nest, plan: JamPlan, facts: JamFacts, body: c_ast.Node,
-                 scalarize=None) -> None:
-        self.src, self.nest, self.plan, self.facts = src, nest, plan, facts
+    """Lines for the covered loops ``forms`` with the copies of the body of the innermost one,
+    starting at ``base`` + ``depth`` indentation units."""
+
+    def __init__(self, src: SourceFile, target: Loop, forms: list[LoopForm], facts: JamFacts, body: c_ast.Node,
+                 base: str, scalarize=None) -> None:
+        self.src, self.target, self.forms, self.facts = src, target, forms, facts
         self.unit = src.indent_unit
-        self.base = src.indent_of(nest.start)
-        self.loops = [nest.loop(it) for it in plan.loops]
-        self.target = self.loops[-1]
+        self.base = base
         self.body_ast = body
-        self.for_count = 0  # for statements emitted so far, in textual order
         self.sites: list[CopySite] = []
-        self.inner_fors = sum(1 for _ in _fors(body))
         # copies -> the elements kept in locals during one run of the innermost loop
         self.scalarize = scalarize
 
-    # -- headers
-    def _header(self, lp: Loop) -> str:
-        toks = [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
-        return spelled(self.src.text, toks)
-
-    def _step_text(self, lp: Loop) -> str:
-        toks = [t for t in tokenize(self.src.text, lp.for_offset, lp.header_end) if t.kind not in ("comment", "pp")]
-        semis = [k for k, t in enumerate(toks) if t.text == ";"]
-        return spelled(self.src.text, toks[semis[-1] + 1:-1])
-
-    def _dist(self, lp: Loop) -> str:
-        far, v = paren(lp.limit.text), lp.iterator
-        if lp.iterator in self.facts.wide_distance:
-            u = unsigned_of(lp)
-            return f"({u}){far} - ({u}){v}" if lp.direction > 0 else f"({u}){v} - ({u}){far}"
-        return f"{far} - {v}" if lp.direction > 0 else f"{v} - {far}"
+    @property
+    def copies(self) -> int:
+        n = 1
+        for f in self.forms:
+            n *= f.factor
+        return n
 
     # -- structure
-    def lines(self) -> list[Line]:
-        return self._level(0, ((),), 0)
+    def lines(self, depth: int = 0) -> list[Line]:
+        return self._level(0, ((),), depth)
 
     def _level(self, k: int, copies: tuple[Offsets, ...], depth: int) -> list[Line]:
-        lp = self.loops[k]
+        f = self.forms[k]
         ind = self.base + self.unit * depth
-        if self.plan.factor(lp.iterator) == 1:
-            self.for_count += 1
-            return self._loop(self._header(lp), k, copies, depth)
+        if f.factor == 1:
+            return self._loop(f.header, k, copies, depth)
         return [Line(ind, "{")] + self._strips(k, copies, depth + 1) + [Line(ind, "}")]
 
     def _strips(self, k: int, copies: tuple[Offsets, ...], depth: int) -> list[Line]:
         """The inside of an unrolled loop's block: the iterator's declaration, the main loop
         over whole strips, and the remainder loop that continues from where it stopped."""
-        lp = self.loops[k]
-        u = self.plan.factor(lp.iterator)
+        f = self.forms[k]
         ind = self.base + self.unit * depth
-        out = [Line(ind, f"{lp.ctype.spelling} {lp.iterator};")] if lp.declared_in_for else []
-        main = render("main_loop.c.j2", name=lp.iterator, start=lp.start.text, op=lp.op, limit=paren(lp.limit.text),
-                      dist=self._dist(lp), full=literal(full_form(lp, u), lp), span=literal(lp.step * u, lp),
-                      sign="+" if lp.direction > 0 else "-")
-        sign = 1 if lp.direction > 0 else -1
-        more = tuple(c + ((lp.iterator, sign * lp.step * a),) for c in copies for a in range(u))
-        self.for_count += 1
-        out += self._loop(main, k, more, depth)
-        rem = render("jam_remainder.c.j2", name=lp.iterator, op=lp.op, limit=paren(lp.limit.text),
-                     step=self._step_text(lp))
-        self.for_count += 1
-        out += self._loop(rem, k, copies, depth)
+        out = [Line(ind, f.decl)] if f.decl else []
+        more = tuple(c + ((f.iterator, f.offset * a),) for c in copies for a in range(f.factor))
+        out += self._loop(f.main, k, more, depth)
+        if f.remainder is not None:
+            out += self._loop(f.remainder, k, copies, depth)
         return out
 
     def _loop(self, header: str, k: int, copies: tuple[Offsets, ...], depth: int) -> list[Line]:
         """A loop header and what it runs: the next covered loop, or the copies of the body."""
         ind = self.base + self.unit * depth
-        if k + 1 < len(self.loops):
-            if self.plan.factor(self.loops[k + 1].iterator) > 1:  # its block opens on this line
+        if k + 1 < len(self.forms):
+            if self.forms[k + 1].factor > 1:  # its block opens on this line
                 return [Line(ind, header + " {")] + self._strips(k + 1, copies, depth + 1) + [Line(ind, "}")]
             return [Line(ind, header)] + self._level(k + 1, copies, depth + 1)
         groups = tuple(self.scalarize(copies)) if self.scalarize is not None else ()
-        self.sites.append(CopySite(self.for_count - 1, copies, groups))
         out: list[Line] = []
         if groups:
-            lp = self.loops[k]
-            out.append(Line(ind, f"if ({lp.start.text} {lp.op} {paren(lp.limit.text)}) {{"))
+            out.append(Line(ind, f"if ({self.forms[k].runs}) {{"))
             out += [Line(ind + self.unit, f"{g.ctype} {g.name} = {g.element};" if g.load else f"{g.ctype} {g.name};")
                     for g in groups]
             ind = ind + self.unit
-        out.append(Line(ind, header + " {"))
+        head = Line(ind, header + " {")
+        self.sites.append(CopySite(head, copies, groups))
+        out.append(head)
+        start, _ = self.body_range()
+        before = self.src.text[self.src.line_starts[self.src.line_col(start)[0] - 1]:start]
+        lead = before if not before.strip() else None
         for n, offs in enumerate(copies):
-            out += _reindent(self.copy_text(offs, n, groups), ind + self.unit)
-            self.for_count += self.inner_fors
+            out += _reindent(self.copy_text(offs, n, groups), ind + self.unit, lead)
         out.append(Line(ind, "}"))
         if groups:
             out += [Line(ind, f"{g.element} = {g.name};") for g in groups if g.store]
@@ -223,23 +258,31 @@ def reference_end(text: str, start: int, end: int) -> int:
     return pos
 
 
-def _reindent(text: str, indent: str) -> list[Line]:
+def _reindent(text: str, indent: str, lead: str | None = "") -> list[Line]:
     """Lines of ``text`` with their common leading whitespace replaced by ``indent``; blank
-    lines at either end dropped."""
+    lines at either end dropped. ``lead``: the whitespace before the text on its first line in
+    the file (None when code precedes it there)."""
     raw = text.split("\n")
+    first_blank = not raw[0].strip()
     while raw and not raw[0].strip():
         raw.pop(0)
+        lead = ""
     while raw and not raw[-1].strip():
         raw.pop()
     if not raw:
         return []
-    first_col = len(raw[0]) - len(raw[0].lstrip())
-    rest = [ln for ln in raw[1:] if ln.strip()]
-    common = min([len(ln) - len(ln.lstrip()) for ln in rest] + [first_col]) if rest else first_col
+    if not first_blank and lead is not None:
+        raw[0] = lead + raw[0]
+    widths = [len(ln) - len(ln.lstrip()) for ln in raw[1:] if ln.strip()]
+    if first_blank or lead is not None:
+        widths.append(len(raw[0]) - len(raw[0].lstrip()))
+    common = min(widths) if widths else 0
     out = []
-    for ln in raw:
+    for k, ln in enumerate(raw):
         if not ln.strip():
             out.append(Line("", ""))
+        elif k == 0 and lead is None and not first_blank:
+            out.append(Line(indent, ln.strip()))
         elif ln[:common].strip():
             out.append(Line("", ln))
         else:
@@ -314,10 +357,6 @@ def expected_items(body: c_ast.Node, copies: tuple[Offsets, ...], facts: JamFact
         sub = substituted(body, offs, renames, kept)
         items += list(sub.block_items or []) if isinstance(sub, c_ast.Compound) else [sub]
     return items
-
-
-def copy_count(plan: JamPlan) -> int:
-    return plan.copies
 
 
 def fresh_names(names: list[str], copies: int, taken: set[str]) -> tuple[tuple[str, ...], ...]:

@@ -20,6 +20,7 @@ from .emit_jam import (
     expected_items,
     fors_in_order,
     fresh_names,
+    plain_forms,
     reference_end,
 )
 from .errors import InternalError, Refusal
@@ -94,31 +95,24 @@ def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan, scalarize:
             wide.add(it)
     facts = JamFacts(frozenset(wide), tu.flags.c89, tuple(renames),
                      fresh_names(renames, plan.copies, tu.identifiers) if renames else ())
-    em = JamEmitter(src, nest, plan, facts, body)
+    em = JamEmitter(src, target, plain_forms(src, nest, plan, facts), facts, body, src.indent_of(nest.start))
     if scalarize:
         if plan.factor(target.iterator) > 1:
             raise Refusal("--scalarize keeps elements in locals over the runs of the innermost loop "
                           f"'{target.iterator}', which is itself unrolled here; leave it out of --factors",
-                          path=nest.path,
-                          line=target.line, column=target.col)
-        em.scalarize = _scalarizer(tu, nest, plan, analysis, em, renames)
+                          path=nest.path, line=target.line, column=target.col)
+        em.scalarize = _scalarizer(tu, nest, analysis, em, renames)
     guard = guard_text(nest, plan, analysis, opts)
     lines = [Line(em.base, ln) for ln in guard.split("\n")]
     lines += [Line(em.base, c.replace("\r\n", "\n")) for c in nest.header_comments]
     lines += em.lines()
-    text = render("nest.c.j2", lines=lines)
-    line_start = src.line_starts[src.line_col(nest.start)[0] - 1]
-    if src.text[line_start:nest.start].strip():
-        text = "\n" + em.base + text
-    mguard = _macro_guard(nest, src)
-    if mguard:
-        text = "\n".join(mguard.split("\n")[:1] + [em.base + g for g in mguard.split("\n")[1:]]) + "\n" + em.base + text
-    if src.newline != "\n":
-        text = text.replace("\n", src.newline)
+    text, prefix = finish_nest_text(src, nest, render("nest.c.j2", lines=lines))
     removed = directive_removal(tu, opts.directive)
     new = apply_edits(src.data, [Edit(nest.start, nest.end, text)] + removed)
     shift = sum(src.line_col(e.end)[0] - src.line_col(e.start)[0] for e in removed)
-    _check_copies(tu, nest, text, new, shift, body, em.sites, facts)
+    first = nest.line - shift + prefix
+    check_copies(tu, nest, new, body, facts, [(first + _index(lines, s.header), s) for s in em.sites],
+                 (first, first + text.count("\n")))
     notes = [f"assumed: {a}" for a in opts.assumptions]
     if scalarize:
         kept = sorted({g.element for site in em.sites for g in site.scalars})
@@ -132,7 +126,7 @@ def _shift(a: Affine, offs: dict[str, int]) -> Affine:
     return a + Affine(const=sum(a.coeff(x) * k for x, k in offs.items()))
 
 
-def _scalarizer(tu: TranslationUnit, nest: Nest, plan: JamPlan, analysis, em: JamEmitter, renames: list[str]):
+def _scalarizer(tu: TranslationUnit, nest: Nest, analysis, em: JamEmitter, renames: list[str]):
     """For one run of the innermost loop with the given copies: the elements to keep in locals.
 
     An element qualifies when its subscripts use only the loops outside the innermost one, one
@@ -140,7 +134,7 @@ def _scalarizer(tu: TranslationUnit, nest: Nest, plan: JamPlan, analysis, em: Ja
     element the original touches whenever the loop runs), and the analysis proves that no other
     access of the run (any copy, any statement) can touch it."""
     src = tu.source
-    target = nest.loop(plan.loops[-1])
+    target = em.target
     fixed = set(nest.iterators[: nest.iterators.index(target.iterator)])
     varying = (set(nest.iterators) | {lp.iterator for lp in nest.inner}) - fixed
     perfect = tuple(nest.iterators)
@@ -205,6 +199,29 @@ def _scalarizer(tu: TranslationUnit, nest: Nest, plan: JamPlan, analysis, em: Ja
         return out
 
     return groups
+
+
+def _index(lines: list[Line], line: Line) -> int:
+    return next(k for k, x in enumerate(lines) if x is line)
+
+
+def finish_nest_text(src, nest: Nest, text: str) -> tuple[str, int]:
+    """The replacement text with what goes before the nest (a new line when code precedes it
+    on its line, the macro guard) and the file's newlines; and how many lines come before the
+    rendered nest."""
+    base = src.indent_of(nest.start)
+    prefix = 0
+    line_start = src.line_starts[src.line_col(nest.start)[0] - 1]
+    if src.text[line_start:nest.start].strip():
+        text = "\n" + base + text
+        prefix += 1
+    mguard = _macro_guard(nest, src)
+    if mguard:
+        text = "\n".join(mguard.split("\n")[:1] + [base + g for g in mguard.split("\n")[1:]]) + "\n" + base + text
+        prefix += mguard.count("\n") + 1
+    if src.newline != "\n":
+        text = text.replace("\n", src.newline)
+    return text, prefix
 
 
 def _body_node(tu: TranslationUnit, for_offset: int) -> c_ast.Node:
@@ -291,16 +308,15 @@ def _walk(node: c_ast.Node):
         yield from _walk(child)
 
 
-def _check_copies(tu: TranslationUnit, nest: Nest, text: str, new: bytes, shift: int, body: c_ast.Node,
-                  sites: list[CopySite], facts: JamFacts) -> None:
-    """Preprocess and parse the rewritten region again; each copy of the body must be the
-    original body with the substitution done on the syntax tree. A difference is an internal
-    error: nothing is written."""
+def check_copies(tu: TranslationUnit, nest: Nest, new: bytes, body: c_ast.Node, facts: JamFacts,
+                 sites: list[tuple[int, CopySite]], region_lines: tuple[int, int]) -> None:
+    """Preprocess and parse the rewritten region again; the loop on each site's line must hold
+    the original body with the substitution done on the syntax tree, copy after copy. A
+    difference is an internal error: nothing is written."""
     src = tu.source
     pre = toolchain.preprocess_text(new, src.path, tu.flags)
-    first = nest.line - shift
-    last = first + text.count("\n")
-    region = [t for ln, t in frontend.main_file_lines(pre, "<stdin>") if first <= ln <= last]
+    first, last = region_lines
+    region = [f'# {ln} "<stdin>"\n{t}' for ln, t in frontend.main_file_lines(pre, "<stdin>") if first <= ln <= last]
     typedefs = tu.cache["types"].typedefs if "types" in tu.cache else {}
     prelude = "".join(f"typedef int {name};\n" for name in sorted(typedefs))
     fors: list[c_ast.For] | None = None
@@ -317,14 +333,18 @@ def _check_copies(tu: TranslationUnit, nest: Nest, text: str, new: bytes, shift:
             raise InternalError(f"the rewritten nest does not parse ({exc}); this is a looptile bug, please report "
                                 "it", path=src.path, line=nest.line, column=nest.col) from exc
         fors = [f for ext in ast.ext if isinstance(ext, c_ast.FuncDef) and ext.decl.name == nest.function
-                for f in fors_in_order(ext.body)
-                if f.coord is not None and first <= f.coord.line <= last]
+                for f in fors_in_order(ext.body)]
+    by_line: dict[int, c_ast.For] = {}
+    for f in fors:
+        if f.coord is not None and f.coord.file == "<stdin>":
+            by_line.setdefault(f.coord.line, f)
     gen = c_generator.CGenerator()
-    for site in sites:
-        if site.for_index >= len(fors):
-            raise InternalError("the rewritten nest has fewer loops than emitted; this is a looptile bug",
-                                path=src.path, line=nest.line, column=nest.col)
-        got = fors[site.for_index].stmt
+    for line, site in sites:
+        node = by_line.get(line)
+        if node is None:
+            raise InternalError(f"the rewritten nest has no loop on line {line} where one was emitted; this is a "
+                                "looptile bug", path=src.path, line=nest.line, column=nest.col)
+        got = node.stmt
         got_items = list(got.block_items or []) if isinstance(got, c_ast.Compound) else [got]
         want = expected_items(body, site.copies, facts, site.scalars)
         if len(got_items) != len(want) or any(gen.visit(a) != gen.visit(b) for a, b in zip(got_items, want)):
