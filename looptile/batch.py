@@ -19,7 +19,7 @@ from dataclasses import dataclass, replace
 
 from . import directives, pipeline
 from .directives import Found
-from .errors import InternalError, LooptileError, Refusal, UsageError
+from .errors import InputError, InternalError, LooptileError, Refusal, UsageError
 from .flags import CompileFlags, from_compile_db
 from .frontend import TranslationUnit
 from .splice import Edit, apply_edits
@@ -103,10 +103,11 @@ def c_files(paths: list[str], exclude: str | None = None) -> list[str]:
     skip = os.path.realpath(exclude) if exclude else None
     for p in paths:
         if os.path.isdir(p):
+            below = []
             for root, dirs, files in os.walk(p):
-                dirs[:] = sorted(d for d in dirs if not d.startswith(".")
-                                 and os.path.realpath(os.path.join(root, d)) != skip)
-                out += [os.path.join(root, f) for f in sorted(files) if f.endswith(".c")]
+                dirs[:] = [d for d in dirs if not d.startswith(".") and os.path.realpath(os.path.join(root, d)) != skip]
+                below += [os.path.join(root, f) for f in files if f.endswith(".c")]
+            out += sorted(below)
         elif os.path.isfile(p):
             out.append(p)
         else:
@@ -142,7 +143,11 @@ def process_file(path: str, opts: ApplyOptions) -> FileOutcome:
             original = fh.read()
         if not directives.mentions_directive(original.decode("latin-1")):
             return FileOutcome(path, original, original)  # nothing to do: no need to parse it
-        tu = pipeline.load(path, opts.flags_for(path))
+        try:
+            flags = opts.flags_for(path)
+        except LooptileError as exc:  # say which file: the message is about the database
+            raise InputError(f"{exc.message} (compilation database {exc.path})", path=path) from None
+        tu = pipeline.load(path, flags)
         original = tu.source.data
         found = directives.find(tu)
         results = [carry_out(tu, f, opts) for f in found]
@@ -433,7 +438,7 @@ def totals(outcomes: list[FileOutcome]) -> Totals:
         t.directives += len(o.directives)
         t.carried_out += o.count("carried_out")
         t.refused += o.count("refused")
-        t.errors += o.count("error") + (o.error is not None)
+        t.errors += o.count("error")
         t.inactive += o.count("inactive")
         t.internal |= o.internal or any(d.internal for d in o.directives)
     return t
@@ -458,7 +463,8 @@ def summary_table(outcomes: list[FileOutcome]) -> str:
                          str(o.count("error"))))
     t = totals(outcomes)
     width = max(len(r[0]) for r in rows)
-    lines = [f"{r[0]:<{width}}  " + "  ".join(f"{c:>{len(h)}}" for c, h in zip(r[1:], rows[0][1:])) for r in rows]
+    lines = [f"{r[0]:<{width}}  " + "  ".join(f"{c:>{len(h)}}" for c, h in zip(r[1:], rows[0][1:]))
+             for r in rows] if len(rows) > 1 else []
     lines.append(f"total: {t.files} file(s), {t.rewritten} rewritten, {t.failed} failed; {t.directives} "
                  f"directive(s): {t.carried_out} nest(s) rewritten, {t.refused} refused, {t.errors} error(s)"
                  + (f", {t.inactive} in inactive branches" if t.inactive else ""))

@@ -136,6 +136,10 @@ def _command_text(path: str, nest: str, sizes: str | None, order: str | None, re
         parts += ["--order", order]
     if remainder != "split":
         parts += ["--remainder", remainder]
+    if kw.get("jam_spec"):
+        parts += ["--jam", kw["jam_spec"]]
+    if kw.get("scalarize"):
+        parts.append("--scalarize")
     flags = _flags(path, kw) if not kw.get("compile_db") else None
     if kw.get("compile_db"):
         parts += ["--compile-db", kw["compile_db"]]
@@ -192,13 +196,15 @@ def _print_report(report) -> None:
 @click.option("--sizes", metavar="SPEC", help="Tile sizes, as for tile.")
 @click.option("--order", metavar="LIST", help="Loop order, as for tile.")
 @click.option("--remainder", type=click.Choice(["split", "clamp"]), default=None, help="As for tile.")
+@click.option("--jam", "jam_spec", metavar="SPEC", help="As for tile.")
+@click.option("--scalarize", is_flag=True, help="As for tile.")
 @click.option("--against", metavar="OTHER.c", help="Check a version rewritten by hand against FILE.")
 @click.option("--func", "func", metavar="NAME", help="With --against: the kernel function to compare.")
 @check_options
 @frontend_options
 @reporting
 def verify_cmd(file: str, nest: str | None, sizes: str | None, order: str | None, remainder: str | None,
-               against: str | None, func: str | None, **kw) -> None:
+               jam_spec: str | None, scalarize: bool, against: str | None, func: str | None, **kw) -> None:
     """Compile and run the original and the rewritten kernel on the same inputs; compare bit for bit."""
     try:
         if bool(against) == bool(nest):
@@ -214,9 +220,10 @@ def verify_cmd(file: str, nest: str | None, sizes: str | None, order: str | None
             report = verify(tu, candidate, func, _verify_options(kw, ()), candidate_name="hand-rewritten")
         else:
             req = TileRequest(_parse_sizes(sizes), tuple(x.strip() for x in order.split(",")) if order else None,
-                              remainder or "split")
+                              remainder or "split", _parse_factors(jam_spec, "--jam") if jam_spec else (), scalarize)
             opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), False,
-                                        _command_text(file, nest, sizes, order, remainder or "split", kw),
+                                        _command_text(file, nest, sizes, order, remainder or "split",
+                                                      dict(kw, jam_spec=jam_spec, scalarize=scalarize)),
                                         split_fallback=remainder is None)
             outcome = pipeline.tile(tu, nest, req, opts)
             report = verify(tu, outcome.new, outcome.nest.function,
@@ -242,19 +249,25 @@ def verify_cmd(file: str, nest: str | None, sizes: str | None, order: str | None
 @click.option("--force", is_flag=True, help="Tile a nest that looptile already rewrote.")
 @click.option("--verify", "check", is_flag=True,
               help="Compile and run both versions first (as the verify command); write nothing if they differ.")
+@click.option("--jam", "jam_spec", metavar="SPEC",
+              help="Then unroll-and-jam loops inside the tiles, e.g. i=4,j=4 (register tiles).")
+@click.option("--scalarize", is_flag=True,
+              help="With --jam: keep elements the innermost loop keeps touching in locals.")
 @check_options
 @frontend_options
 @reporting
 def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: str, as_diff: bool,
-         output: str | None, in_place: bool, force: bool, check: bool, **kw) -> None:
+         output: str | None, in_place: bool, force: bool, check: bool, jam_spec: str | None, scalarize: bool,
+         **kw) -> None:
     """Strip-mine a band of loops and move the tile loops outward, if the analysis proves it legal."""
     try:
         if sum([as_diff, bool(output), in_place]) > 1:
             raise UsageError("choose one of --diff, -o OUT and --in-place")
         req = TileRequest(_parse_sizes(sizes), tuple(x.strip() for x in order.split(",")) if order else None,
-                          remainder or "split")
+                          remainder or "split", _parse_factors(jam_spec, "--jam") if jam_spec else (), scalarize)
         opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), force,
-                                    _command_text(file, nest, sizes, order, remainder or "split", kw),
+                                    _command_text(file, nest, sizes, order, remainder or "split",
+                                                  dict(kw, jam_spec=jam_spec, scalarize=scalarize)),
                                     split_fallback=remainder is None)
         tu = pipeline.load(file, _flags(file, kw))
         outcome = pipeline.tile(tu, nest, req, opts)
@@ -293,7 +306,7 @@ def _deliver(file: str, outcome, as_diff: bool, output: str | None, in_place: bo
         sys.stdout.flush()
 
 
-def _parse_factors(spec: str) -> tuple[tuple[str, int], ...]:
+def _parse_factors(spec: str, option: str = "--factors") -> tuple[tuple[str, int], ...]:
     out = []
     for item in spec.split(","):
         name, eq, value = item.strip().partition("=")
@@ -302,7 +315,7 @@ def _parse_factors(spec: str) -> tuple[tuple[str, int], ...]:
         except ValueError:
             n = None
         if not eq or not name.strip() or n is None:
-            raise UsageError(f"--factors item '{item.strip()}' is not LOOP=FACTOR (e.g. i=4)")
+            raise UsageError(f"{option} item '{item.strip()}' is not LOOP=FACTOR (e.g. i=4)")
         out.append((name.strip(), n))
     return tuple(out)
 

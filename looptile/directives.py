@@ -89,9 +89,14 @@ class Found:
 
 # ---------------------------------------------------------------- finding
 
+# A pragma line with a continuation or a comment in it might be a directive too: such files are read.
+_MENTION = re.compile(r"^[ \t]*#[ \t]*pragma[ \t]+(?:omp[ \t]+(?:tile|unroll|interchange)\b|looptile\b)"
+                      r"|^[ \t]*#[ \t]*pragma\b[^\r\n]*(?:\\[ \t]*\r?$|/\*)|\b_Pragma\b", re.M)
+
+
 def mentions_directive(text: str) -> bool:
     """A cheap test on the raw text: could the file hold a directive at all?"""
-    return "looptile" in text or re.search(r"\bomp\s+(?:tile|unroll|interchange)\b", text) is not None
+    return _MENTION.search(text) is not None
 
 
 def find(tu: TranslationUnit) -> list[Found]:

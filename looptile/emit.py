@@ -7,7 +7,7 @@ iteration order of every emitted form is exactly the plan's schedule.
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import jinja2
@@ -172,8 +172,9 @@ def full_form(lp: Loop, size: int) -> int:
 
 
 class NestEmitter:
-    def __init__(self, src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts) -> None:
+    def __init__(self, src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, jam=None) -> None:
         self.src, self.nest, self.plan, self.facts = src, nest, plan, facts
+        self.jam = jam  # an emit_jam.JamContext when the plan unrolls and jams inside the tiles
         self.unit = src.indent_unit
         self.base = src.indent_of(nest.start)
         inner = nest.perfect[-1]
@@ -381,24 +382,78 @@ class NestEmitter:
         if single:
             return self._main_and_remainder(headers, slots[last_tile], rest)
         if plan.remainder == "clamp" or not any(s.kind == "point" for s in rest):
-            inner = [self.point_header(s, tiles[s.iterator], False) if s.kind == "point" else self.plain_header(s)
-                     for s in rest]
-            return self.loops_and_body(headers + inner, 0)
+            return self._run(headers, rest, "clamp", tiles, 0)
         out = self._headers_only(headers, 0)
         ind = self.base + self.unit * depth
-        fast = [self.point_header(s, tiles[s.iterator], True) if s.kind == "point" else self.plain_header(s)
-                for s in rest]
-        slow = [self.point_header(s, tiles[s.iterator], False) if s.kind == "point" else self.plain_header(s)
-                for s in rest]
         test = self.full_test(rest, tiles)
         if not test:  # every tile is whole wherever these loops run: the fast path alone
-            return out + self.loops_and_body(fast, depth)
+            return out + self._run([], rest, "fast", tiles, depth)
         out.append(Line(ind, f"if ({test}) {{"))
-        out.extend(self.loops_and_body(fast, depth + 1))
+        out.extend(self._run([], rest, "fast", tiles, depth + 1))
         out.append(Line(ind, "} else {"))
-        out.extend(self.loops_and_body(slow, depth + 1))
+        out.extend(self._run([], rest, "clamp", tiles, depth + 1))
         out.append(Line(ind, "}"))
         return out
+
+    def _run(self, prefix: list[str], rest: list[Slot], mode: str, tiles: dict[str, str], depth: int) -> list[Line]:
+        """The loops inside the tiles and the body: ``prefix`` headers, then the ``rest`` slots
+        in ``mode`` "fast" (whole tiles), "clamp" (bounds clamped to the tile) or "remainder"
+        (the single loop's remainder tile); unrolled and jammed when the plan says so."""
+        if self.jam is None:
+            return self.loops_and_body(prefix + [self._rest_header(s, mode, tiles) for s in rest], depth)
+        from .emit_jam import JamEmitter
+        em = JamEmitter(self.src, self.jam.target, [self._form(s, mode, tiles) for s in rest], self.jam.facts,
+                        self.jam.body, self.base, self.jam.scalarize)
+        return self._headers_only(prefix, depth) + em.lines(depth + len(prefix))
+
+    def _rest_header(self, s: Slot, mode: str, tiles: dict[str, str]) -> str:
+        if s.kind != "point":
+            return self.plain_header(s)
+        if mode == "remainder":
+            lp = self.loops[s.iterator]
+            return render("remainder_loop.c.j2", decl=self._decl(lp, False), name=s.name, tile=tiles[s.iterator],
+                          op=lp.op, limit=self._limit(lp), step=self._step_text(lp))
+        return self.point_header(s, tiles[s.iterator], mode == "fast")
+
+    def _form(self, s: Slot, mode: str, tiles: dict[str, str]):
+        """How a loop inside the tiles is emitted when the plan unrolls and jams (emit_jam.LoopForm)."""
+        from .emit_jam import LoopForm, distance
+        lp = self.loops[s.iterator]
+        u = dict(self.plan.jam).get(s.iterator, 1)
+        header = self._rest_header(s, mode, tiles)
+        name, limit = s.name, self._limit(lp)
+        tile = tiles.get(s.iterator) if s.kind == "point" else None
+        if tile is None:
+            runs = f"{lp.start.text} {lp.op} {limit}"
+        else:
+            runs = "" if mode == "fast" else f"{tile} {lp.op} {limit}"
+        if u == 1:
+            return LoopForm(s.iterator, header=header, runs=runs)
+        sign = "+" if lp.direction > 0 else "-"
+        strip = literal(lp.step * u, lp)
+        wide = s.iterator in self.facts.wide_distance or s.iterator in self.jam.facts.wide_distance
+        whole = f"{distance(lp, wide, limit)} >= {literal(full_form(lp, u), lp)}"
+        step = self._step_text(lp)
+        decl = f"{lp.ctype.spelling} {name};" if self._decl(lp, False) else None
+        if tile is None:
+            main = render("main_loop.c.j2", name=name, start=lp.start.text, op=lp.op, limit=limit,
+                          dist=distance(lp, wide, limit), full=literal(full_form(lp, u), lp), span=strip, sign=sign)
+            rem: str | None = render("jam_remainder.c.j2", name=name, op=lp.op, limit=limit, step=step)
+        elif mode == "fast":  # a whole tile: every strip is whole (the tile size is a multiple of u)
+            span = literal(lp.step * (s.size or 1), lp)
+            main = f"for ({name} = {tile}; {name} {'<' if lp.direction > 0 else '>'} {tile} {sign} {span}; " \
+                   f"{name} {sign}= {strip})"
+            rem = None
+        elif mode == "clamp":
+            span = literal(lp.step * (s.size or 1), lp)
+            offset = f"{name} - {tile}" if lp.direction > 0 else f"{tile} - {name}"
+            main = f"for ({name} = {tile}; {name} {lp.op} {limit} && {offset} < {span} && {whole}; " \
+                   f"{name} {sign}= {strip})"
+            rem = f"for (; {name} {lp.op} {limit} && {offset} < {span}; {step})"
+        else:
+            main = f"for ({name} = {tile}; {name} {lp.op} {limit} && {whole}; {name} {sign}= {strip})"
+            rem = f"for (; {name} {lp.op} {limit}; {step})"
+        return LoopForm(s.iterator, u, decl=decl, main=main, remainder=rem, offset=lp.step * lp.direction, runs=runs)
 
     def _headers_only(self, headers: list[str], depth: int) -> list[Line]:
         return [Line(self.base + self.unit * (depth + k), h) for k, h in enumerate(headers)]
@@ -415,23 +470,14 @@ class NestEmitter:
         main = render("main_loop.c.j2", name=tile.name, start=lp.start.text, op=lp.op, limit=self._limit(lp),
                       dist=self._dist(lp, tile.name), full=literal(self._full(lp, tile.size or 1), lp), span=span,
                       sign="+" if lp.direction > 0 else "-")
-        fast = [main] + [self.point_header(s, tile.name, True) if s.kind == "point" else self.plain_header(s)
-                         for s in rest]
-        out.extend(self.loops_and_body(fast, depth + 1))
-        remainder = []
-        for s in rest:
-            if s.kind == "point":
-                remainder.append(render("remainder_loop.c.j2", decl=self._decl(lp, False), name=s.name,
-                                        tile=tile.name, op=lp.op, limit=self._limit(lp), step=self._step_text(lp)))
-            else:
-                remainder.append(self.plain_header(s))
-        out.extend(self.loops_and_body(remainder, depth + 1))
+        tiles = {tile.iterator: tile.name}
+        out.extend(self._run([main], rest, "fast", tiles, depth + 1))
+        out.extend(self._run([], rest, "remainder", tiles, depth + 1))
         out.append(Line(ind, "}"))
         return out
 
     def _shift(self, lines: list[Line]) -> list[Line]:
-        return [Line(ln.indent + self.unit if ln.indent.startswith(self.base) else ln.indent, ln.text)
-                for ln in lines]
+        return [replace(ln, indent=ln.indent + self.unit) if ln.indent.startswith(self.base) else ln for ln in lines]
 
     def versioned(self, lines: list[Line], checks: list[str]) -> list[Line]:
         """``if (checks) { rewrite } else { original nest }``."""
@@ -445,18 +491,19 @@ class NestEmitter:
         decls = [f"{self.loops[s.iterator].ctype.spelling} {s.name};" for s in self.plan.slots if s.kind == "tile"]
         if not self.facts.c89 or not decls or main_and_remainder(self.plan):
             return lines
-        shifted = [Line(ln.indent + self.unit if ln.indent.startswith(self.base) else ln.indent, ln.text)
-                   for ln in lines]
+        shifted = self._shift(lines)
         return [Line(self.base, "{")] + [Line(self.base + self.unit, d) for d in decls] + shifted + \
                [Line(self.base, "}")]
 
 
 def emit_nest(src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, guard: str,
-              checks: list[str] | None = None) -> str:
+              checks: list[str] | None = None, jam=None) -> str:
     """The replacement text for nest.start..nest.end (first line starts at the for's column).
 
-    With ``checks``, the rewrite runs only when they hold and the original nest otherwise."""
-    em = NestEmitter(src, nest, plan, facts)
+    With ``checks``, the rewrite runs only when they hold and the original nest otherwise.
+    With ``jam`` (an emit_jam.JamContext), loops inside the tiles are unrolled and jammed; the
+    lines of the loops holding copies are recorded in it."""
+    em = NestEmitter(src, nest, plan, facts, jam)
     lines = [Line(em.base, ln) for ln in guard.split("\n")]
     lines += [Line(em.base, c.replace("\r\n", "\n")) for c in nest.header_comments]
     body = em.c89_wrap(em.nest_lines())
@@ -465,8 +512,13 @@ def emit_nest(src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, gua
     lines += body
     text = render("nest.c.j2", lines=lines)
     line_start = src.line_starts[src.line_col(nest.start)[0] - 1]
+    prefix = 0
     if src.text[line_start:nest.start].strip():  # code or a comment before the nest on its line
         text = "\n" + em.base + text
+        prefix = 1
+    if jam is not None:
+        from .emit_jam import site_lines
+        jam.sites = [(k + prefix, site) for k, site in site_lines(lines)]
     return text.replace("\n", src.newline) if src.newline != "\n" else text
 
 

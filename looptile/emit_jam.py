@@ -40,12 +40,20 @@ class ScalarGroup:
     nodes: frozenset[tuple[int, int, int]] = frozenset()  # (copy index, line, column) of the references
 
 
+@dataclass(frozen=True)
 class CopySite:
-    """The loop whose header is the Line ``header`` holds these copies of the body, in this
-    order (an object, so that the Line can be found again by identity)."""
+    """A loop that holds these copies of the body, in this order."""
 
-    def __init__(self, header: Line, copies: tuple[Offsets, ...], scalars: tuple[ScalarGroup, ...]) -> None:
-        self.header, self.copies, self.scalars = header, copies, scalars
+    copies: tuple[Offsets, ...]
+    scalars: tuple[ScalarGroup, ...] = ()
+
+
+@dataclass(frozen=True)
+class SiteLine(Line):
+    """The header line of a loop that holds copies (kept through re-indentation, which uses
+    dataclasses.replace, so the re-parse check can find its line)."""
+
+    site: CopySite | None = None
 
 
 @dataclass(frozen=True)
@@ -90,6 +98,20 @@ def distance(lp: Loop, wide: bool, far: str | None = None) -> str:
         u = unsigned_of(lp)
         return f"({u}){far} - ({u}){v}" if lp.direction > 0 else f"({u}){v} - ({u}){far}"
     return f"{far} - {v}" if lp.direction > 0 else f"{v} - {far}"
+
+
+class JamContext:
+    """What the tile emitter needs to unroll-and-jam inside the tiles: the copied body, its
+    loop, the facts, the scalarization callback; it collects the emitted copy sites."""
+
+    def __init__(self, body: c_ast.Node, target: Loop, facts: JamFacts, scalarize=None) -> None:
+        self.body, self.target, self.facts, self.scalarize = body, target, facts, scalarize
+        self.sites: list[tuple[int, CopySite]] = []  # (line index in the emitted text, site)
+
+
+def site_lines(lines: list[Line]) -> list[tuple[int, CopySite]]:
+    """(index in ``lines``, site) of every line that holds copies."""
+    return [(k, ln.site) for k, ln in enumerate(lines) if isinstance(ln, SiteLine) and ln.site is not None]
 
 
 def plain_forms(src: SourceFile, nest: Nest, plan: JamPlan, facts: JamFacts) -> list[LoopForm]:
@@ -165,13 +187,14 @@ class JamEmitter:
         groups = tuple(self.scalarize(copies)) if self.scalarize is not None else ()
         out: list[Line] = []
         if groups:
-            out.append(Line(ind, f"if ({self.forms[k].runs}) {{"))
+            runs = self.forms[k].runs
+            out.append(Line(ind, f"if ({runs}) {{" if runs else "{"))
             out += [Line(ind + self.unit, f"{g.ctype} {g.name} = {g.element};" if g.load else f"{g.ctype} {g.name};")
                     for g in groups]
             ind = ind + self.unit
-        head = Line(ind, header + " {")
-        self.sites.append(CopySite(head, copies, groups))
-        out.append(head)
+        site = CopySite(copies, groups)
+        self.sites.append(site)
+        out.append(SiteLine(ind, header + " {", site))
         start, _ = self.body_range()
         before = self.src.text[self.src.line_starts[self.src.line_col(start)[0] - 1]:start]
         lead = before if not before.strip() else None

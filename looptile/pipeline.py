@@ -317,6 +317,13 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
     nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive)
     plan = plan_tiling(nest, req, tu.identifiers, _from_analysis(analysis, deps.band_hull),
                        _from_analysis(analysis, deps.scan_bounds))
+    if req.jam or req.scalarize:
+        if not plan.band:
+            raise UsageError("--jam needs tiles (--sizes); to unroll and jam without tiling, use the jam command")
+        if not req.jam:
+            raise UsageError("--scalarize needs --jam (the elements are kept in locals between the jammed copies)")
+        from .transform.jam import plan_tile_jam
+        plan = replace(plan_tile_jam(nest, plan, req.jam), scalarize=req.scalarize)
     _check_request_side(tu, nest, plan, opts)
     legality: Legality = analysis.check(list(plan.schedule))
     if not legality.legal:
@@ -339,7 +346,8 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
         notes.append("the whole-tile test of this band is not one conjunction of affine conditions, so the "
                      "remainder style is clamp")
     guard_bounds = _overflow_bounds(nest, analysis, plan, facts)
-    text = emit_nest(src, nest, plan, facts, guard_text(nest, plan, analysis, opts, guard_bounds), guard_bounds)
+    jam = _jam_context(tu, nest, analysis, plan) if plan.jam else None
+    text = emit_nest(src, nest, plan, facts, guard_text(nest, plan, analysis, opts, guard_bounds), guard_bounds, jam)
     guard = _macro_guard(nest, src)
     if guard:
         text = "\n".join(guard.split("\n")[:1] + [src.indent_of(nest.start) + g for g in guard.split("\n")[1:]]) \
@@ -347,7 +355,17 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
         text = text.replace("\n", src.newline) if src.newline != "\n" else text
     removed = directive_removal(tu, opts.directive)
     new = apply_edits(src.data, [Edit(nest.start, nest.end, text)] + removed)
-    check_parses(tu, nest, text, new, sum(src.line_col(e.end)[0] - src.line_col(e.start)[0] for e in removed))
+    shift = sum(src.line_col(e.end)[0] - src.line_col(e.start)[0] for e in removed)
+    check_parses(tu, nest, text, new, shift)
+    if jam is not None:
+        from .copies import check_copies
+        first = nest.line - shift + (guard.count("\n") + 1 if guard else 0)
+        check_copies(tu, nest, new, jam.body, jam.facts, [(first + k, site) for k, site in jam.sites],
+                     (nest.line - shift, nest.line - shift + text.count("\n")))
+        if plan.scalarize:
+            kept = sorted({g.element for _, site in jam.sites for g in site.scalars})
+            notes.append(f"kept in locals during each run of loop '{plan.slots[-1].iterator}': "
+                         + (", ".join(kept[:12]) or "nothing") + (", ..." if len(kept) > 12 else ""))
     notes += [f"assumed: {a}" for a in opts.assumptions]
     notes += [f"the rewrite runs only when {c} (no bound can overflow then); the original nest runs otherwise"
               for c in guard_bounds]
@@ -369,6 +387,37 @@ def directive_removal(tu: TranslationUnit, directive: int | None) -> list[Edit]:
     if m and not src.text[line_start:tok.start].strip():
         return [Edit(line_start, end + m.end(), "")]
     return [Edit(tok.start, end, "")]
+
+
+def _jam_context(tu: TranslationUnit, nest: Nest, analysis: NestAnalysis, plan: TilePlan):
+    """The copied body and what its copies need, for unroll-and-jam inside the tiles."""
+    from .copies import body_node, check_body, scalarizer
+    from .emit_jam import JamContext, JamEmitter, JamFacts, fresh_names
+    target = nest.perfect[-1]
+    body = body_node(tu, target.for_offset)
+    copies = 1
+    for _, u in plan.jam:
+        copies *= u
+    renames = check_body(tu, nest, target, {it for it, _ in plan.jam}, copies, body)
+    wide = set()
+    for it, _ in plan.jam:
+        lp = nest.loop(it)
+        low = lp.start.value if lp.direction > 0 else lp.limit.value
+        outer = nest.iterators[: nest.iterators.index(it)]
+        if not lp.ctype.is_unsigned and not analysis.always_nonnegative(low, outer):
+            wide.add(it)
+    facts = JamFacts(frozenset(wide), tu.flags.c89, tuple(renames),
+                     fresh_names(renames, copies, tu.identifiers) if renames else ())
+    ctx = JamContext(body, target, facts)
+    if plan.scalarize:
+        innermost = plan.slots[-1].iterator
+        if dict(plan.jam).get(innermost, 1) > 1:
+            raise Refusal(f"--scalarize keeps elements in locals over the runs of the innermost loop '{innermost}', "
+                          "which is itself unrolled here; leave it out of --jam", path=nest.path, line=nest.line,
+                          column=nest.col)
+        ctx.scalarize = scalarizer(tu, nest, analysis, JamEmitter(tu.source, target, [], facts, body, ""), renames,
+                                   innermost)
+    return ctx
 
 
 def check_parses(tu: TranslationUnit, nest: Nest, text: str, new: bytes, lines_removed_before: int = 0) -> None:

@@ -13,10 +13,11 @@ pair of schedule dimensions whose values depend on whether its strip is whole.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from ..errors import Refusal, UsageError
 from ..model import Nest, ScheduleDim
+from .tile import TilePlan
 
 MAX_COPIES = 256  # more body copies than this is almost certainly a typo in the factors
 
@@ -116,3 +117,59 @@ def _plan(nest: Nest, loops: tuple[str, ...], factors: tuple[tuple[str, int], ..
         tail.append(ScheduleDim(it, when=(it, block, True)))
     rest = [ScheduleDim(lp.iterator) for lp in nest.perfect[len(loops):]]
     return JamPlan(loops, factors, kind, tuple(dims + tail + rest))
+
+
+def plan_tile_jam(nest: Nest, plan: TilePlan, factors: tuple[tuple[str, int], ...]) -> TilePlan:
+    """Unroll-and-jam of loops inside the tiles (after the last tile loop): the point loops
+    and untouched loops there. Each jammed point loop's tile size must be a multiple of its
+    factor, so that strips never cross a tile boundary and line up with strips counted from
+    the loop's start; the band must be rectangular."""
+    slots = list(plan.slots)
+    last_tile = max(k for k, s in enumerate(slots) if s.kind == "tile")
+    inside = [s.iterator for s in slots[last_tile + 1:]]
+    where = dict(path=nest.path, line=nest.line, column=nest.col)
+    seen: dict[str, int] = {}
+    for name, u in factors:
+        if name not in inside:
+            raise UsageError(f"--jam names loop '{name}', which does not run inside the tiles (the loops there: "
+                             f"{', '.join(inside)})", **where)
+        if name in seen:
+            raise UsageError(f"--jam names loop '{name}' twice")
+        if u < 2:
+            raise UsageError(f"the factor of '{name}' must be at least 2, not {u}")
+        size = plan.size_of(name)
+        if size is not None and size % u:
+            raise UsageError(f"the tile size {size} of '{name}' is not a multiple of its jam factor {u}; choose "
+                             "sizes that are", **where)
+        seen[name] = u
+    if any(s.hull is not None or s.scan is not None for s in slots):
+        raise Refusal("unroll-and-jam after tiling is supported for rectangular bands only (the loop bounds do not "
+                      "depend on each other)", **where)
+    copies = 1
+    for u in seen.values():
+        copies *= u
+    if copies > MAX_COPIES:
+        raise UsageError(f"the factors make {copies} copies of the body; at most {MAX_COPIES} are allowed")
+    jammed = tuple((it, seen[it]) for it in inside if it in seen)
+    for k, it in enumerate(inside):
+        lp = nest.loop(it)
+        if lp.ctype.bits < 32 and it in seen:
+            raise Refusal(f"loop '{it}' has an iterator of type {lp.ctype.spelling}; unrolling it is not supported",
+                          path=nest.path, line=lp.line, column=lp.col)
+        uses = (lp.start.value.names() | lp.limit.value.names()) & set(seen) & set(inside[:k])
+        if uses:
+            raise Refusal(f"the bounds of loop '{it}' depend on '{sorted(uses)[0]}', which is unrolled: its copies "
+                          f"would need different ranges of '{it}'", path=nest.path, line=lp.line, column=lp.col)
+    dims: list[ScheduleDim] = []
+    tail: list[ScheduleDim] = []
+    for d in plan.schedule:
+        u = seen.get(d.iterator) if d.block is None else None
+        if u is None:
+            dims.append(d)
+            continue
+        lp = nest.loop(d.iterator)
+        block = lp.step * u
+        dims.append(ScheduleDim(d.iterator, block=block, origin=lp.start.value))
+        dims.append(ScheduleDim(d.iterator, when=(d.iterator, block, False)))
+        tail.append(ScheduleDim(d.iterator, when=(d.iterator, block, True)))
+    return replace(plan, jam=jammed, schedule=tuple(dims + tail))

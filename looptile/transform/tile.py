@@ -17,6 +17,8 @@ class TileRequest:
     sizes: tuple[tuple[str | None, int], ...] = ()  # (iterator or None for positional, size)
     order: tuple[str, ...] | None = None
     remainder: str = "split"
+    jam: tuple[tuple[str, int], ...] = ()  # unroll-and-jam of loops inside the tiles afterwards
+    scalarize: bool = False
 
 
 @dataclass(frozen=True)
@@ -42,6 +44,10 @@ class TilePlan:
     slots: tuple[Slot, ...]  # new order of the perfect loops, outermost first
     remainder: str
     schedule: tuple[ScheduleDim, ...]
+    # Unroll-and-jam after tiling (register tiles): (iterator, factor) of loops inside the
+    # tiles, outermost first; the copies go into the body of the innermost loop.
+    jam: tuple[tuple[str, int], ...] = ()
+    scalarize: bool = False
 
     def size_of(self, iterator: str) -> int | None:
         for it, s in zip(self.band, self.sizes):
@@ -53,7 +59,13 @@ class TilePlan:
         if not self.band:
             return "permuted loops to (" + ", ".join(s.name for s in self.slots) + ")"
         what = f"tiled ({', '.join(self.band)}) by ({', '.join(map(str, self.sizes))})"
-        return f"{what}, order {', '.join(s.name for s in self.slots)}, remainder {self.remainder}"
+        what = f"{what}, order {', '.join(s.name for s in self.slots)}, remainder {self.remainder}"
+        if self.jam:
+            what += (f"; then unrolled {', '.join(f'{it} by {u}' for it, u in self.jam)} and jammed the copies "
+                     f"into the body of loop '{self.slots[-1].iterator}'")
+            if self.scalarize:
+                what += "; elements that loop keeps touching are held in locals"
+        return what
 
 
 def fresh_tile_name(iterator: str, taken: set[str]) -> str:
