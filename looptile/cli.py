@@ -128,10 +128,25 @@ def _parse_sizes(spec: str | None) -> tuple[tuple[str | None, int], ...]:
     return tuple(out)
 
 
-def _command_text(path: str, nest: str, sizes: str | None, order: str | None, remainder: str, kw: dict) -> str:
+def _tile_request(sizes: tuple[str, ...], order: str | None, remainder: str | None, jam_spec: str | None,
+                  scalarize: bool) -> TileRequest:
+    """--sizes (repeatable: one per level, outermost first), --order, --remainder, --jam."""
+    return TileRequest(_parse_sizes(sizes[0]) if sizes else (),
+                       tuple(x.strip() for x in order.split(",")) if order else None, remainder or "split",
+                       _parse_factors(jam_spec, "--jam") if jam_spec else (), scalarize,
+                       tuple(_parse_sizes(x) for x in sizes[1:]))
+
+
+def _all_sizes(req: TileRequest) -> tuple[int, ...]:
+    """Every tile size and jam factor of a request (the sizes verify sweeps around)."""
+    return tuple(s for _, s in req.sizes) + tuple(s for level in req.levels for _, s in level) + \
+        tuple(u for _, u in req.jam)
+
+
+def _command_text(path: str, nest: str, sizes: tuple[str, ...], order: str | None, remainder: str, kw: dict) -> str:
     parts = ["looptile", "tile", path, "--nest", nest]
-    if sizes:
-        parts += ["--sizes", sizes]
+    for spec in sizes:
+        parts += ["--sizes", spec]
     if order:
         parts += ["--order", order]
     if remainder != "split":
@@ -193,7 +208,7 @@ def _print_report(report) -> None:
 @main.command(name="verify")
 @click.argument("file")
 @click.option("--nest", "nest", metavar="SEL", help="Check looptile's rewrite of this nest (L<line>, FUNC, FUNC:K).")
-@click.option("--sizes", metavar="SPEC", help="Tile sizes, as for tile.")
+@click.option("--sizes", metavar="SPEC", multiple=True, help="Tile sizes, as for tile (repeatable).")
 @click.option("--order", metavar="LIST", help="Loop order, as for tile.")
 @click.option("--remainder", type=click.Choice(["split", "clamp"]), default=None, help="As for tile.")
 @click.option("--jam", "jam_spec", metavar="SPEC", help="As for tile.")
@@ -203,7 +218,7 @@ def _print_report(report) -> None:
 @check_options
 @frontend_options
 @reporting
-def verify_cmd(file: str, nest: str | None, sizes: str | None, order: str | None, remainder: str | None,
+def verify_cmd(file: str, nest: str | None, sizes: tuple[str, ...], order: str | None, remainder: str | None,
                jam_spec: str | None, scalarize: bool, against: str | None, func: str | None, **kw) -> None:
     """Compile and run the original and the rewritten kernel on the same inputs; compare bit for bit."""
     try:
@@ -219,15 +234,14 @@ def verify_cmd(file: str, nest: str | None, sizes: str | None, order: str | None
                 raise InputError(f"cannot read the file; {exc.strerror}", path=against) from exc
             report = verify(tu, candidate, func, _verify_options(kw, ()), candidate_name="hand-rewritten")
         else:
-            req = TileRequest(_parse_sizes(sizes), tuple(x.strip() for x in order.split(",")) if order else None,
-                              remainder or "split", _parse_factors(jam_spec, "--jam") if jam_spec else (), scalarize)
+            req = _tile_request(sizes, order, remainder, jam_spec, scalarize)
             opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), False,
                                         _command_text(file, nest, sizes, order, remainder or "split",
                                                       dict(kw, jam_spec=jam_spec, scalarize=scalarize)),
                                         split_fallback=remainder is None)
             outcome = pipeline.tile(tu, nest, req, opts)
             report = verify(tu, outcome.new, outcome.nest.function,
-                            _verify_options(kw, tuple(s for _, s in req.sizes)))
+                            _verify_options(kw, _all_sizes(req)))
     except LooptileError as exc:
         if exc.path is None:
             exc.path = file
@@ -239,7 +253,8 @@ def verify_cmd(file: str, nest: str | None, sizes: str | None, order: str | None
 @main.command()
 @click.argument("file")
 @click.option("--nest", "nest", required=True, metavar="SEL", help="L<line>, FUNC or FUNC:K.")
-@click.option("--sizes", metavar="SPEC", help="Tile sizes: i=32,j=32 or 32,32 (outermost loops).")
+@click.option("--sizes", metavar="SPEC", multiple=True,
+              help="Tile sizes: i=32,j=32 or 32,32 (outermost loops). Repeat for more levels, outermost first.")
 @click.option("--order", metavar="LIST", help="New loop order, e.g. ii,kk,jj,i,k,j (ii or i.1 = tile loop of i).")
 @click.option("--remainder", type=click.Choice(["split", "clamp"]), default=None,
               help="split (default): fast path for whole tiles; clamp: min-style bounds only.")
@@ -256,15 +271,14 @@ def verify_cmd(file: str, nest: str | None, sizes: str | None, order: str | None
 @check_options
 @frontend_options
 @reporting
-def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: str, as_diff: bool,
+def tile(file: str, nest: str, sizes: tuple[str, ...], order: str | None, remainder: str, as_diff: bool,
          output: str | None, in_place: bool, force: bool, check: bool, jam_spec: str | None, scalarize: bool,
          **kw) -> None:
     """Strip-mine a band of loops and move the tile loops outward, if the analysis proves it legal."""
     try:
         if sum([as_diff, bool(output), in_place]) > 1:
             raise UsageError("choose one of --diff, -o OUT and --in-place")
-        req = TileRequest(_parse_sizes(sizes), tuple(x.strip() for x in order.split(",")) if order else None,
-                          remainder or "split", _parse_factors(jam_spec, "--jam") if jam_spec else (), scalarize)
+        req = _tile_request(sizes, order, remainder, jam_spec, scalarize)
         opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), force,
                                     _command_text(file, nest, sizes, order, remainder or "split",
                                                   dict(kw, jam_spec=jam_spec, scalarize=scalarize)),
@@ -272,7 +286,7 @@ def tile(file: str, nest: str, sizes: str | None, order: str | None, remainder: 
         tu = pipeline.load(file, _flags(file, kw))
         outcome = pipeline.tile(tu, nest, req, opts)
         report = verify(tu, outcome.new, outcome.nest.function,
-                        _verify_options(kw, tuple(s for _, s in req.sizes))) if check else None
+                        _verify_options(kw, _all_sizes(req))) if check else None
     except LooptileError as exc:
         if exc.path is None:  # a usage error about this file's request: say which file
             exc.path = file

@@ -163,7 +163,7 @@ def main_and_remainder(plan: TilePlan) -> bool:
     """One strip-mined rectangular loop in split style: a main loop over whole tiles and a
     remainder loop (a non-rectangular one takes the general whole-tile test instead)."""
     rectangular = all(s.hull is None and s.scan is None for s in plan.slots)
-    return len(plan.band) == 1 and plan.remainder == "split" and rectangular
+    return len(plan.band) == 1 and plan.remainder == "split" and rectangular and not plan.levels
 
 
 def full_form(lp: Loop, size: int) -> int:
@@ -220,6 +220,15 @@ class NestEmitter:
         span = literal(lp.step * (s.size or 1), lp)
         if s.hull is not None:
             return self._hull_tile_header(s, lp, span)
+        if s.level > 1:  # inside the tile of the level outside: starts there, ends at its end or the bound
+            parent = max((t for t in self.plan.slots if t.kind == "tile" and t.iterator == s.iterator
+                          and t.level < s.level), key=lambda t: t.level)
+            offset = f"{s.name} - {parent.name}" if lp.direction > 0 else f"{parent.name} - {s.name}"
+            return render("tile_loop_inner.c.j2", decl=self._decl(lp, True), name=s.name, parent=parent.name,
+                          op=lp.op, limit=self._limit(lp), offset=offset,
+                          parent_span=literal(lp.step * (parent.size or 1), lp), dist=self._dist(lp, s.name),
+                          more=">=" if lp.inclusive else ">", span=span, sign="+" if lp.direction > 0 else "-",
+                          past=self._past(lp))
         return render("tile_loop.c.j2", decl=self._decl(lp, True), name=s.name, start=lp.start.text, op=lp.op,
                       limit=self._limit(lp), dist=self._dist(lp, s.name), more=">=" if lp.inclusive else ">",
                       span=span, sign="+" if lp.direction > 0 else "-", past=self._past(lp))

@@ -19,6 +19,8 @@ class TileRequest:
     remainder: str = "split"
     jam: tuple[tuple[str, int], ...] = ()  # unroll-and-jam of loops inside the tiles afterwards
     scalarize: bool = False
+    # More levels of tiles inside the first (level 2, 3, ...), each given like ``sizes``.
+    levels: tuple[tuple[tuple[str | None, int], ...], ...] = ()
 
 
 @dataclass(frozen=True)
@@ -26,7 +28,8 @@ class Slot:
     kind: str  # "tile" (the loop over tiles), "point" (inside a tile) or "loop" (not tiled)
     iterator: str  # the original loop's iterator
     name: str  # the emitted iterator name
-    size: int | None = None  # tile size in iterations (tiled loops only)
+    size: int | None = None  # tile size in iterations (tiled loops; a point loop: its innermost level's)
+    level: int = 1  # tile loops: 1 for the outermost tiles, 2 for the tiles inside those, ...
     # Tile loops of non-rectangular loops run over the loop's hull: the loop's values given the
     # iterators defined outside the tile loop lie in max(lowers) .. min(uppers), computed by the
     # analysis. The end the tiles start from (the low end going up) is one expression.
@@ -48,17 +51,29 @@ class TilePlan:
     # tiles, outermost first; the copies go into the body of the innermost loop.
     jam: tuple[tuple[str, int], ...] = ()
     scalarize: bool = False
+    levels: tuple[tuple[tuple[str, int], ...], ...] = ()  # levels 2, 3, ...: (iterator, size) in band order
 
     def size_of(self, iterator: str) -> int | None:
+        """The size of the innermost tiles of ``iterator`` (what its point loop runs over)."""
+        for level in reversed(self.levels):
+            for it, s in level:
+                if it == iterator:
+                    return s
         for it, s in zip(self.band, self.sizes):
             if it == iterator:
                 return s
         return None
 
+    @property
+    def depth(self) -> int:
+        return 1 + len(self.levels)
+
     def describe(self) -> str:
         if not self.band:
             return "permuted loops to (" + ", ".join(s.name for s in self.slots) + ")"
         what = f"tiled ({', '.join(self.band)}) by ({', '.join(map(str, self.sizes))})"
+        for level in self.levels:
+            what += f", then ({', '.join(it for it, _ in level)}) by ({', '.join(str(sz) for _, sz in level)})"
         what = f"{what}, order {', '.join(s.name for s in self.slots)}, remainder {self.remainder}"
         if self.jam:
             what += (f"; then unrolled {', '.join(f'{it} by {u}' for it, u in self.jam)} and jammed the copies "
@@ -68,12 +83,50 @@ class TilePlan:
         return what
 
 
-def fresh_tile_name(iterator: str, taken: set[str]) -> str:
-    """``ii`` for ``i`` unless that name is used anywhere in the file; then ``i_tile``, ``i_tile2``..."""
-    for cand in [iterator * 2, iterator + "_tile"] + [f"{iterator}_tile{k}" for k in range(2, 100)]:
+def fresh_tile_name(iterator: str, taken: set[str], level: int = 1) -> str:
+    """``ii`` for ``i`` unless that name is used anywhere in the file; then ``i_tile``, ``i_tile2``...
+    Level 2: ``iii``, then ``i_tile_l2``, ``i_tile_l2_2``, ...; and so on."""
+    if level == 1:
+        cands = [iterator * 2, iterator + "_tile"] + [f"{iterator}_tile{k}" for k in range(2, 100)]
+    else:
+        cands = [iterator * (level + 1), f"{iterator}_tile_l{level}"] + \
+            [f"{iterator}_tile_l{level}_{k}" for k in range(2, 100)]
+    for cand in cands:
         if cand not in taken:
             return cand
     raise UsageError(f"cannot find a fresh name for the tile loop of '{iterator}'")
+
+
+def _levels(nest: Nest, req: TileRequest, band: tuple[str, ...],
+            sizes: tuple[int, ...]) -> tuple[tuple[tuple[str, int], ...], ...]:
+    """The extra levels of ``req``: loops of the first level's band with sizes that divide
+    the size of the level outside (so each tile lies inside the tile that contains it)."""
+    out = []
+    current = dict(zip(band, sizes))
+    for k, spec in enumerate(req.levels, start=2):
+        named = [n for n, _ in spec if n is not None]
+        if named and len(named) != len(spec):
+            raise UsageError("--sizes mixes named (i=32) and positional (32) sizes; use one form")
+        if not named and len(spec) > len(band):
+            raise UsageError(f"--sizes of level {k} gives {len(spec)} sizes for a band of {len(band)} loop(s)")
+        given = dict(spec) if named else dict(zip(band, (sz for _, sz in spec)))
+        extra = [it for it in given if it not in band]
+        if extra:
+            raise UsageError(f"--sizes of level {k} names loop '{extra[0]}', which the first --sizes does not tile")
+        if named and len(set(named)) != len(named):
+            raise UsageError("--sizes names a loop twice")
+        lb = tuple(it for it in band if it in given)
+        ls = tuple(given[it] for it in lb)
+        for it, sz in zip(lb, ls):
+            if sz < 1:
+                raise UsageError(f"the tile size of '{it}' must be at least 1, not {sz}")
+        for it, sz in zip(lb, ls):
+            if current[it] % sz:
+                raise UsageError(f"the level-{k} tile size {sz} of '{it}' does not divide its size {current[it]} at "
+                                 "the level outside; choose sizes that nest (e.g. 256 then 32)")
+            current[it] = sz
+        out.append(tuple(zip(lb, ls)))
+    return tuple(out)
 
 
 def _band(nest: Nest, req: TileRequest) -> tuple[tuple[str, ...], tuple[int, ...]]:
@@ -116,24 +169,27 @@ def _band(nest: Nest, req: TileRequest) -> tuple[tuple[str, ...], tuple[int, ...
     return band, sizes
 
 
-def _resolve(token: str, nest: Nest, band: tuple[str, ...], names: dict[str, str]) -> tuple[str, str]:
-    """An --order item to (kind, iterator): ``i`` point/loop, ``ii`` or ``i.1`` tile of i."""
+def _resolve(token: str, nest: Nest, tiled: dict[tuple[str, int], str]) -> tuple[str, str, int]:
+    """An --order item to (kind, iterator, level): ``i`` point/loop, ``ii`` or ``i.1`` the
+    level-1 tile loop of i, ``iii`` or ``i.2`` the level-2 one, ..."""
     its = nest.iterators
-    if token.endswith(".1") and token[:-2] in its:
-        it = token[:-2]
-        if it not in band:
-            raise UsageError(f"--order lists '{token}', but loop '{it}' is not tiled (not in --sizes)")
-        return "tile", it
+    band = {it for it, _ in tiled}
+    head, dot, num = token.rpartition(".")
+    if dot and head in its and num.isdigit():
+        if (head, int(num)) not in tiled:
+            raise UsageError(f"--order lists '{token}', but loop '{head}' has no tiles at level {num} "
+                             "(see --sizes)")
+        return "tile", head, int(num)
     if token in its:
-        return ("point" if token in band else "loop"), token
-    for it in band:
-        if token in (it * 2, names[it]):
+        return ("point" if token in band else "loop"), token, 0
+    for (it, level), name in tiled.items():
+        if token in (it * (level + 1), name):
             if token in its or token in _source_loop_names(nest):
                 raise UsageError(f"--order item '{token}' is ambiguous: the source has its own loop '{token}'; "
-                                 f"write '{it}.1' for the tile loop of '{it}'")
-            return "tile", it
+                                 f"write '{it}.{level}' for the level-{level} tile loop of '{it}'")
+            return "tile", it, level
     raise UsageError(f"--order item '{token}' names no loop of the nest; use the iterators "
-                     f"({', '.join(its)}) and, for tile loops, 'ii' or 'i.1'")
+                     f"({', '.join(its)}) and, for tile loops, 'ii' or 'i.1' (level 2: 'iii' or 'i.2')")
 
 
 def _source_loop_names(nest: Nest) -> set[str]:
@@ -152,46 +208,69 @@ def plan_tiling(nest: Nest, req: TileRequest, taken: set[str], hull: HullFn | No
     if req.remainder not in ("split", "clamp"):
         raise UsageError(f"--remainder must be split or clamp, not '{req.remainder}'")
     band, sizes = _band(nest, req)
+    levels = _levels(nest, req, band, sizes) if req.levels else ()
     names = {it: fresh_tile_name(it, taken) for it in band}
+    tiled = {(it, 1): names[it] for it in band}
+    for k, level in enumerate(levels, start=2):
+        for it, _ in level:
+            tiled[(it, k)] = fresh_tile_name(it, taken | set(tiled.values()), k)
+    size_at = {(it, 1): sz for it, sz in zip(band, sizes)}
+    size_at.update({(it, k): sz for k, level in enumerate(levels, start=2) for it, sz in level})
+    innermost = {it: max(k for (x, k) in tiled if x == it) for it in band}
     its = nest.iterators
     if req.order is None:
         first = its.index(band[0])
         last = first + len(band)
-        order = [("loop", it) for it in its[:first]] + [("tile", it) for it in band] + \
-                [("point", it) for it in band] + [("loop", it) for it in its[last:]]
+        order = [("loop", it, 0) for it in its[:first]] + [("tile", it, 1) for it in band]
+        for k, level in enumerate(levels, start=2):
+            order += [("tile", it, k) for it, _ in level]
+        order += [("point", it, 0) for it in band] + [("loop", it, 0) for it in its[last:]]
     else:
-        listed = [_resolve(t, nest, band, names) for t in req.order]
+        listed = [_resolve(t, nest, tiled) for t in req.order]
         if len(set(listed)) != len(listed):
             raise UsageError("--order lists a loop twice")
-        need = {("tile", b) for b in band} | {("point", b) for b in band}
+        need = {("tile", it, k) for it, k in tiled} | {("point", b, 0) for b in band}
         missing = need - set(listed)
         if missing:
-            show = sorted(names[i] if k == "tile" else i for k, i in missing)
+            show = sorted(tiled[(i, k)] if kind == "tile" else i for kind, i, k in missing)
             raise UsageError(f"--order must list every tile and point loop of the band; missing: {', '.join(show)}")
-        listed_its = {i for _, i in listed}
+        listed_its = {i for _, i, _ in listed}
         rest = [it for it in its if it not in listed_its]
-        positions = [its.index(i) for _, i in listed]
+        positions = [its.index(i) for _, i, _ in listed]
         lo = min(positions)
-        order = [("loop", it) for it in rest if its.index(it) < lo] + listed + \
-                [("loop", it) for it in rest if its.index(it) > lo]
-    for k, (kind, it) in enumerate(order):
-        if kind == "point" and ("tile", it) not in order[:k]:
-            raise UsageError(f"--order places the point loop '{it}' outside its own tile loop '{names[it]}'")
+        order = [("loop", it, 0) for it in rest if its.index(it) < lo] + listed + \
+                [("loop", it, 0) for it in rest if its.index(it) > lo]
+    for k, (kind, it, level) in enumerate(order):
+        if kind == "point" and ("tile", it, innermost[it]) not in order[:k]:
+            raise UsageError(f"--order places the point loop '{it}' outside its own tile loop "
+                             f"'{tiled[(it, innermost[it])]}'")
+        if kind == "tile" and level > 1:
+            outer = max(x for (y, x) in tiled if y == it and x < level)
+            if ("tile", it, outer) not in order[:k]:
+                raise UsageError(f"--order places the level-{level} tile loop '{tiled[(it, level)]}' outside the "
+                                 f"level-{outer} tile loop '{tiled[(it, outer)]}'")
     slots = []
     defined: list[str] = []
-    for kind, it in order:
-        slot = Slot(kind, it, names[it] if kind == "tile" else it, dict(zip(band, sizes)).get(it),
-                    defined=tuple(defined))
-        if kind == "tile" and _needs_projection(nest, it, defined):
+    for kind, it, level in order:
+        if kind == "tile":
+            slot = Slot(kind, it, tiled[(it, level)], size_at[(it, level)], level=level, defined=tuple(defined))
+        else:
+            slot = Slot(kind, it, it, size_at.get((it, innermost.get(it, 1))), defined=tuple(defined))
+        needs = _needs_projection(nest, it, defined)
+        if needs and levels:
+            lp = nest.loop(it)
+            raise Refusal("tiling at several levels is supported for rectangular bands only (bounds that do not "
+                          "depend on other loops of the nest)", path=nest.path, line=lp.line, column=lp.col)
+        if kind == "tile" and needs:
             slot = _hull_slot(nest, slot, hull)
-        if kind != "tile" and _needs_projection(nest, it, defined):
+        if kind != "tile" and needs:
             slot = _scan_slot(nest, slot, scan)
         if kind != "tile":
             defined.append(it)
         slots.append(slot)
     slots = tuple(slots)
     schedule = tuple(_dim(nest, s) for s in slots)
-    return TilePlan(band, sizes, slots, req.remainder, schedule)
+    return TilePlan(band, sizes, slots, req.remainder, schedule, levels=levels)
 
 
 def _refs(nest: Nest, it: str) -> set[str]:
