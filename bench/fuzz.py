@@ -1,17 +1,20 @@
 """Soundness fuzzing of looptile, the large batch.
 
     python bench/fuzz.py --cases 5000 [--seed S] [--jobs 2] [--start K] [--time-limit SEC]
-                         [--keep DIR] [--subprocess]
+                         [--keep DIR] [--subprocess] [--kind tile|jam|all]
 
 Generates random affine loop nests with a random ``looptile tile`` request each
-(tests/fuzzgen.py), runs looptile and checks every answer from outside:
+(tests/fuzzgen.py; with --kind jam, ``looptile jam`` and ``looptile unroll`` requests
+instead, tests/fuzzjam.py; with --kind all, a mix), runs looptile and checks every answer
+from outside:
 
 - rewritten (exit 0): the system C compiler builds original and rewrite with
   -O1 -ffp-contract=off and the address/undefined sanitizers; the outputs (a hash of
   the raw bytes of every array after each of 20 (n, m) pairs) must be identical;
 - refused for legality (exit 1 with a witness): the witness pair is re-derived by
-  tracing the original program at the witness parameters and the requested order is
-  computed independently of looptile;
+  tracing the original program at the witness parameters and the requested order (for
+  jam and unroll, the jammed order derived from the factors and bounds) is computed
+  independently of looptile;
 - other refusals are counted by reason; exit 2 is a generator bug, exit 3 a looptile bug.
 
 Prints the counts (tried, transformed, refused for legality / unsupported, mismatches,
@@ -51,7 +54,7 @@ def _one(index: int) -> fuzzgen.Result:
     work = Path(tempfile.mkdtemp(prefix=f"case{index}-", dir=_OPTS["tmp"]))
     try:
         try:
-            case = fuzzgen.generate(seed, index)
+            case = fuzzgen.generate(seed, index, _OPTS["kind"])
         except Exception as exc:  # noqa: BLE001 - a generator bug, reported as such
             return fuzzgen.Result(index, "generator", False, "", detail=f"generate() failed: {exc!r}")
         runner = fuzzgen.run_looptile_subprocess if _OPTS["subprocess"] else fuzzgen.run_looptile_inprocess
@@ -80,6 +83,8 @@ def main(argv: list[str] | None = None) -> int:
                     help="stop starting new cases after this many seconds (the report says how many ran)")
     ap.add_argument("--keep", default=None, help="directory for failing cases (default: a new temp dir)")
     ap.add_argument("--subprocess", action="store_true", help="run looptile as a command, not in-process")
+    ap.add_argument("--kind", choices=fuzzgen.KINDS, default="tile",
+                    help="the requests: tile (default), jam (jam and unroll), or all (a mix); the nests are the same")
     args = ap.parse_args(argv)
     problem = fuzzgen.cc_problem()
     if problem:
@@ -87,7 +92,7 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     keep = args.keep or tempfile.mkdtemp(prefix=f"looptile-fuzz-seed{args.seed}-")
     tmp = tempfile.mkdtemp(prefix="looptile-fuzz-work-")
-    opts = {"seed": args.seed, "keep": keep, "tmp": tmp, "subprocess": args.subprocess}
+    opts = {"seed": args.seed, "keep": keep, "tmp": tmp, "subprocess": args.subprocess, "kind": args.kind}
     results: list[fuzzgen.Result] = []
     t0 = time.perf_counter()
     stopped = False
@@ -114,7 +119,7 @@ def main(argv: list[str] | None = None) -> int:
                 if res.failed:
                     print(f"case {res.index}: {res.status}"
                           f"{' (witness ' + res.witness + ')' if res.witness else ''}: "
-                          f"looptile tile case.c --nest kernel {res.request}\n    "
+                          f"looptile {res.verb} case.c --nest kernel {res.request}\n    "
                           + res.detail.strip().replace("\n", "\n    ")[:1500], flush=True)
                 if len(results) % 100 == 0:
                     el = time.perf_counter() - t0
@@ -124,7 +129,7 @@ def main(argv: list[str] | None = None) -> int:
     results.sort(key=lambda r: r.index)
     summary = fuzzgen.Summary(results, wall)
     print()
-    print(f"seed {args.seed}, cases {args.start}..{args.start + len(results) - 1}, jobs {args.jobs}"
+    print(f"seed {args.seed}, kind {args.kind}, cases {args.start}..{args.start + len(results) - 1}, jobs {args.jobs}"
           + (f" (stopped by --time-limit {args.time_limit:.0f} s after {len(results)} of {args.cases})"
              if stopped else ""))
     print(summary.report())

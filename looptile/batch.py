@@ -15,14 +15,15 @@ import traceback
 from collections.abc import Callable
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from concurrent.futures.process import BrokenProcessPool
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields, replace
 
 from . import directives, pipeline
 from .directives import Found
 from .errors import InputError, InternalError, LooptileError, Refusal, UsageError
 from .flags import CompileFlags, from_compile_db
-from .frontend import TranslationUnit
+from .frontend import LoopSite, TranslationUnit
 from .splice import Edit, apply_edits
+from .transform.tile import TileRequest
 from .verify import VerifyOptions, verify
 
 REPORT_VERSION = 1
@@ -151,6 +152,10 @@ def process_file(path: str, opts: ApplyOptions) -> FileOutcome:
         original = tu.source.data
         found = directives.find(tu)
         results = [carry_out(tu, f, opts) for f in found]
+        bug = next((r.outcome for r in results if r.outcome.internal), None)
+        if bug is not None:  # a looptile bug in one rewrite: leave the whole file as it is
+            return FileOutcome(path, original, original, error=bug.message, internal=True,
+                               rendered_error=f"{bug.rendered}\n  (nothing in this file was changed)")
         outcomes, new = combine(tu, results)
         return FileOutcome(path, original, new, outcomes)
     except OSError as exc:
@@ -172,7 +177,7 @@ def process_file(path: str, opts: ApplyOptions) -> FileOutcome:
 class _Result:
     outcome: DirectiveOutcome
     edit: Edit | None = None  # the rewrite, as one edit of the original bytes
-    site_offset: int | None = None
+    site: LoopSite | None = None  # the loop the directive applies to
 
 
 def _outcome(f: Found, status: str, **kw) -> DirectiveOutcome:
@@ -181,8 +186,12 @@ def _outcome(f: Found, status: str, **kw) -> DirectiveOutcome:
 
 def _failed(f: Found, exc: LooptileError, nest: NestInfo | None = None) -> _Result:
     status = "refused" if isinstance(exc, Refusal) else "error"
+    if exc.line is not None and exc.line != f.pragma.line and exc.path is not None:
+        # the position is the nest's or a construct's in it: say which directive this is about
+        exc.details = [f"(this is why the directive at {exc.path}:{f.pragma.line}:{f.pragma.column} is not "
+                       f"carried out: {f.pragma.text})"] + list(exc.details)
     return _Result(_outcome(f, status, nest=nest, message=exc.headline(), rendered=exc.render(),
-                            details=tuple(exc.details), internal=isinstance(exc, InternalError)))
+                            details=tuple(exc.details), internal=isinstance(exc, InternalError)), site=f.site)
 
 
 def _nest_info(tu: TranslationUnit, f: Found) -> NestInfo | None:
@@ -210,11 +219,7 @@ def carry_out(tu: TranslationUnit, f: Found, opts: ApplyOptions) -> _Result:
         if pipeline.select(tu, nest.selector) is not f.site:
             raise InternalError(f"selector {nest.selector} does not name the loop after the directive", path=path,
                                 line=nest.line, column=nest.column)
-        if d.unroll is not None or d.jam is not None or d.scalarize:
-            outcome = _jam_or_unroll(tu, nest.selector, d, topts)
-        else:
-            assert d.tile is not None
-            outcome = pipeline.tile(tu, nest.selector, d.tile, topts)
+        outcome = run_job(tu, nest.selector, d, topts)
         lines = None
         if opts.check is not None:
             lines = _verify(tu, outcome, d, opts.check)
@@ -224,13 +229,14 @@ def carry_out(tu: TranslationUnit, f: Found, opts: ApplyOptions) -> _Result:
     except LooptileError as exc:
         if exc.path is None:
             exc.path = path
+        exc.message = in_directive_words(exc.message, f.pragma.kind)
         return _failed(f, exc, nest)
     return _Result(_outcome(f, "carried_out", nest=nest, rewrite=outcome.plan.describe(), notes=outcome.notes,
-                            verify=lines), edit, outcome.nest.start)
+                            verify=lines), edit, f.site)
 
 
 def _copy_jobs():
-    """The module with the jam and unroll jobs (``jam(tu, sel, JamRequest, opts)``,
+    """The module with the jam and unroll jobs (``jam(tu, sel, JamRequest, opts, scalarize)``,
     ``unroll(tu, sel, factor, opts)``): the pipeline's when it has them, else the jam job's;
     None in a version without them."""
     if hasattr(pipeline, "jam") and hasattr(pipeline, "unroll"):
@@ -242,24 +248,32 @@ def _copy_jobs():
     return jam_job if hasattr(jam_job, "jam") and hasattr(jam_job, "unroll") else None
 
 
-def _jam_or_unroll(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipeline.TileOptions):
-    """Unrolling and unroll-and-jam through the jam job; what this version cannot do is refused,
-    never silently ignored."""
+def _tile_takes_jam() -> bool:
+    """Whether the tile job can unroll-and-jam inside the tiles (``TileRequest.jam``)."""
+    return {"jam", "scalarize"} <= {f.name for f in fields(TileRequest)}
+
+
+def run_job(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipeline.TileOptions):
+    """The job a directive asks for; what this version cannot do is refused, never silently
+    ignored."""
     p = d.pragma
     where = dict(path=tu.source.path, line=p.line, column=p.column, source_line=tu.source.line_text(p.line))
+    unavailable = Refusal("not carried out: unroll-and-jam is not available in this version; the directive and "
+                          "its nest are left as they are", **where)
+    if d.tile is not None:  # tiling or a permutation, perhaps with unroll-and-jam inside the tiles
+        req = d.tile
+        if d.jam is not None or d.scalarize:
+            if not _tile_takes_jam():
+                raise unavailable
+            req = replace(req, jam=d.jam.factors if d.jam else (), scalarize=d.scalarize)
+        return pipeline.tile(tu, sel, req, topts)
     jobs = _copy_jobs()
     if jobs is None:
-        raise Refusal("not carried out: unroll-and-jam is not available in this version; the directive and its "
-                      "nest are left as they are", **where)
-    if d.scalarize:
-        raise Refusal("not carried out: scalar replacement (scalarize) is not available in this version; drop the "
-                      "clause to carry out the rest", **where)
-    if d.jam is not None and d.tile is not None:
-        raise Refusal("not carried out: unroll-and-jam of the point loops after tiling (tile(...) with jam(...)) "
-                      "is not available in this version; give tile(...) or jam(...) alone", **where)
+        raise unavailable
     if d.jam is not None:
         from .transform.jam import JamRequest
-        return jobs.jam(tu, sel, JamRequest(d.jam.factors), topts)
+        extra = {"scalarize": True} if d.scalarize else {}
+        return jobs.jam(tu, sel, JamRequest(d.jam.factors), topts, **extra)
     assert d.unroll is not None
     if d.unroll.full:
         raise Refusal("not carried out: full unrolling is not available in this version; write partial(N)",
@@ -271,12 +285,9 @@ def _jam_or_unroll(tu: TranslationUnit, sel: str, d: directives.Directive, topts
 
 
 def _verify(tu: TranslationUnit, outcome, d: directives.Directive, check: VerifyOptions) -> tuple[str, ...]:
-    if d.jam is not None:
-        sizes = tuple(u for _, u in d.jam.factors)
-    elif d.unroll is not None and d.unroll.factor is not None:
-        sizes = (d.unroll.factor,)
-    else:
-        sizes = tuple(s for _, s in d.tile.sizes) if d.tile is not None else ()
+    sizes = tuple(s for _, s in d.tile.sizes) if d.tile is not None else ()
+    sizes += tuple(u for _, u in d.jam.factors) if d.jam is not None else ()
+    sizes += (d.unroll.factor,) if d.unroll is not None and d.unroll.factor is not None else ()
     nest = outcome.nest
     where = dict(path=nest.path, line=nest.line, column=nest.col)
     try:
@@ -293,16 +304,22 @@ def _verify(tu: TranslationUnit, outcome, d: directives.Directive, check: Verify
 _OPTION_NAMES = {"omp tile": (("--sizes", "sizes(...)"),),
                  "omp unroll": (("--factor", "partial(...)"),),
                  "looptile": (("--sizes", "tile(...)"), ("--order", "order(...)"), ("--factors", "jam(...)"),
+                              ("--jam", "jam(...)"), ("--scalarize", "scalarize"),
                               ("--remainder split", "remainder(split)"), ("--remainder clamp", "remainder(clamp)"),
                               ("--remainder", "remainder(...)"))}
+
+
+def in_directive_words(message: str, kind: str) -> str:
+    """A message of the tile or jam job with its option names replaced by the directive's clauses."""
+    for option, clause in _OPTION_NAMES.get(kind, ()):
+        message = message.replace(option, clause)
+    return message
 
 
 def _as_directive_error(exc: UsageError, f: Found, tu: TranslationUnit) -> LooptileError:
     """A request the nest cannot take (a loop the nest does not have...) is an error of the
     directive: said in the directive's words, at the directive."""
-    msg = exc.message
-    for option, clause in _OPTION_NAMES.get(f.pragma.kind, ()):
-        msg = msg.replace(option, clause)
+    msg = in_directive_words(exc.message, f.pragma.kind)
     src = tu.source
     details = list(exc.details)
     if exc.line is not None and exc.line != f.pragma.line:
@@ -343,8 +360,30 @@ def combine(tu: TranslationUnit, results: list[_Result]) -> tuple[tuple[Directiv
             else:
                 accepted.append(r)
         out.append(r.outcome)
+    out = [_note_inner(o, r.site, accepted) for o, r in zip(out, results)]
     new = apply_edits(tu.source.data, [a.edit for a in accepted if a.edit is not None])
     return tuple(out), new
+
+
+def _note_inner(o: DirectiveOutcome, site: LoopSite | None, accepted: list[_Result]) -> DirectiveOutcome:
+    """A refused directive whose nest holds a directive carried out in this run: a second run
+    sees the rewritten inner nest instead of its directive."""
+    if o.status != "refused" or site is None:
+        return o
+    inner = [a.outcome.line for a in accepted if a.site is not None and _encloses(site, a.site)]
+    if not inner:
+        return o
+    note = (f"the directive at line {inner[0]} inside this nest is carried out in this run; run apply again to "
+            "try this one on the rewritten nest")
+    return replace(o, details=o.details + (note,), rendered=(o.rendered or "") + "\n  " + note)
+
+
+def _encloses(outer: LoopSite, s: LoopSite) -> bool:
+    while s.parent is not None:
+        s = s.parent
+        if s is outer:
+            return True
+    return False
 
 
 # ---------------------------------------------------------------- many files

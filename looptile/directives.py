@@ -397,9 +397,12 @@ def _looptile(p: Pragma, parser: _Parser) -> Directive:
     if remainder is not None and not levels:
         raise parser.error("remainder(...) chooses how partial tiles run; it needs a tile(...) clause",
                            seen["remainder"])
-    if "scalarize" in seen and not levels and jam is None:
-        raise parser.error("scalarize applies to a tiled or jammed nest; it needs tile(...) or jam(...)",
+    if "scalarize" in seen and jam is None:
+        raise parser.error("scalarize keeps elements in locals between the jammed copies; it needs jam(...)",
                            seen["scalarize"])
+    if jam is not None and order is not None and not levels:
+        raise parser.error("jam(...) with order(...) jams inside tiles, so it needs tile(...); without tiles give "
+                           "jam(...) alone", seen["jam"])
     tile = TileRequest(levels[0] if levels else (), order, remainder or "split") if levels or order else None
     return Directive(p, tile, remainder is None, jam, None, "scalarize" in seen, tuple(parser.used_macros))
 

@@ -24,6 +24,13 @@ without trusting anything looptile computes:
 "Legal by construction" requests (no dependence at all in the nest, an identity
 permutation, or all tile sizes 1 with the default order) must nearly never be refused.
 
+``generate(seed, index, kind)`` makes the same nest for every ``kind``; only the request
+differs: ``tile`` (the default), ``jam`` (``looptile jam`` and, about one in five,
+``looptile unroll`` requests, tests/fuzzjam.py) or ``all`` (a mix of the three).  For jam
+and unroll the requested order of the witness check is the jammed order, derived by hand
+from the shape of the emitted code (``fuzzjam.jam_order_key``); a plain unroll and a jam of
+the innermost loop alone keep every order, so they are legal by construction.
+
 Used by tests/test_fuzz.py (a small fixed-seed batch) and bench/fuzz.py (the large batch).
 """
 from __future__ import annotations
@@ -37,6 +44,8 @@ import subprocess
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+
+import fuzzjam
 
 PAD = 4  # added to every subscript, so offsets down to -2 stay inside the arrays
 DIM = 40  # extent of each dimension of 1-, 2- and 3-d arrays (iterators stay in 0..13)
@@ -108,13 +117,19 @@ class ArrayDecl:
 
 @dataclass(frozen=True)
 class Request:
-    kind: str  # "tile" or "permute"
+    kind: str  # "tile", "permute", "jam" or "unroll"
     band: tuple[str, ...]  # tiled loops
     sizes: tuple[int, ...]
     slots: tuple[tuple[str, str], ...]  # the requested order: ("tile"|"point"|"loop", iterator)
     args: tuple[str, ...]  # command-line arguments after --nest kernel
     default_order: bool
     note: str = ""
+    factors: tuple[tuple[str, int], ...] = ()  # jam and unroll: (iterator, factor), outermost first
+
+    @property
+    def verb(self) -> str:
+        """The looptile command of the request."""
+        return self.kind if self.kind in ("jam", "unroll") else "tile"
 
     def text(self) -> str:
         return " ".join(shlex.quote(a) for a in self.args)
@@ -138,10 +153,16 @@ class Case:
     @property
     def legal_by_construction(self) -> bool:
         r = self.request
-        if self.no_deps:
+        if self.no_deps and r.kind != "jam":
             return True
         if r.kind == "permute":
             return [it for _, it in r.slots] == [lp.it for lp in self.loops[: self.perfect]]
+        if r.kind == "unroll":
+            return True  # the copies run one after the other: nothing changes order
+        if r.kind == "jam":  # only the innermost loop unrolled: the same order
+            if any(fuzzjam.bound_user(self.loops[: self.perfect], it) for it, _ in r.factors):
+                return False  # refused by design: an inner loop's bounds use an unrolled iterator
+            return self.no_deps or [it for it, _ in r.factors] == [self.loops[self.perfect - 1].it]
         return r.default_order and all(s == 1 for s in r.sizes)
 
     def nonrectangular(self, it: str) -> bool:
@@ -151,7 +172,7 @@ class Case:
         return bool(set(lp.uses) & {p.it for p in perf}) or any(it in p.uses for p in perf)
 
     def command(self, path: str = "case.c", out: str = "out.c") -> list[str]:
-        return ["tile", path, "--nest", "kernel", *self.request.args, "-o", out]
+        return [self.request.verb, path, "--nest", "kernel", *self.request.args, "-o", out]
 
 
 # ---------------------------------------------------------------- generation
@@ -456,8 +477,15 @@ def _token(rng: random.Random, kind: str, it: str) -> str:
     return it
 
 
-def generate(seed: int, index: int) -> Case:
-    """Case ``index`` of the batch with ``seed``: the same pair always gives the same case."""
+KINDS = ("tile", "jam", "all")
+
+
+def generate(seed: int, index: int, kind: str = "tile") -> Case:
+    """Case ``index`` of the batch with ``seed``: the same pair always gives the same case.
+
+    ``kind`` chooses the request (see the module's docstring); the nest does not depend on it."""
+    if kind not in KINDS:
+        raise ValueError(f"kind must be one of {KINDS}, not {kind!r}")
     rng = random.Random(f"looptile-fuzz/{seed}/{index}")
     depth = rng.choice((2, 2, 2, 3, 3, 3, 4))
     params = ("n", "m") if rng.random() < 0.7 else ("n",)
@@ -485,7 +513,14 @@ def generate(seed: int, index: int) -> Case:
     arrays = sorted({ArrayDecl(nm, d) for nm, d in used}, key=lambda a: a.name)
     if global_acc:
         arrays.append(ArrayDecl("s", 0))
-    request = _gen_request(rng, loops[:perfect])
+    if kind == "all":
+        kind = random.Random(f"looptile-fuzz-kind/{seed}/{index}").choice(("tile", "tile", "jam"))
+    if kind == "tile":
+        request = _gen_request(rng, loops[:perfect])
+    else:
+        verb, factors, args = fuzzjam.gen_copy_request(rng, loops[:perfect])
+        request = Request(verb, tuple(it for it, _ in factors), tuple(u for _, u in factors), (), args, True,
+                          factors=factors)
     case = Case(index, seed, tuple(loops), perfect, tuple(body), imperfect, tuple(arrays), local_acc, no_deps,
                 request)
     case.source = render_program(case)
@@ -710,6 +745,7 @@ class Result:
     tool_seconds: float = 0.0
     seconds: float = 0.0
     files: dict[str, str] = field(default_factory=dict, repr=False)
+    verb: str = "tile"  # the looptile command of the request
 
     @property
     def failed(self) -> bool:
@@ -766,7 +802,8 @@ def run_tool(case: Case, workdir: Path, runner=run_looptile_inprocess) -> ToolRu
 def verify(case: Case, workdir: Path, tool: ToolRun) -> Result:
     """Judge looptile's answer ``tool`` for ``case`` (files in ``workdir``) with the outside checks."""
     t0 = time.perf_counter()
-    res = Result(case.index, "", case.legal_by_construction, case.request.text(), tool_seconds=tool.seconds)
+    res = Result(case.index, "", case.legal_by_construction, case.request.text(), tool_seconds=tool.seconds,
+                 verb=case.request.verb)
     res.files = {"case.c": case.source}
     try:
         _verify(case, workdir, tool, res)
@@ -939,6 +976,17 @@ def check_witness(case: Case, workdir: Path, stderr: str, w: re.Match) -> tuple[
         return "bad", f"in the original order the sink runs first (positions {dst_ev.pos} < {src_ev.pos})"
     # Now the requested order, computed from the request alone.
     p = case.perfect
+    if case.request.kind in ("jam", "unroll"):
+        perf = case.loops[:p]
+        factors = dict(case.request.factors)
+
+        def jam_key(ev: Event) -> tuple:
+            return fuzzjam.jam_order_key(perf, case.request.kind, factors, dict(zip((lp.it for lp in perf), ev.vals)),
+                                         params, ev.pos)
+        if jam_key(dst_ev) < jam_key(src_ev):
+            return "checked", ""
+        return "bad", (f"in the jammed order the source still runs first: keys {jam_key(src_ev)} (source) "
+                       f"{jam_key(dst_ev)} (sink)")
     domain = sorted({ev.vals[:p] for ev in events})
     key_src = new_order_key(case, src_ev, domain, params)
     key_dst = new_order_key(case, dst_ev, domain, params)
@@ -1019,7 +1067,10 @@ class Summary:
     def report(self) -> str:
         rs = self.results
         n = len(rs)
-        lines = [f"cases tried:            {n}",
+        verbs: dict[str, int] = {}
+        for r in rs:
+            verbs[r.verb] = verbs.get(r.verb, 0) + 1
+        lines = [f"cases tried:            {n} ({', '.join(f'{v} {c}' for v, c in sorted(verbs.items()))})",
                  f"transformed (verified): {self.count(lambda r: r.status == 'ok')}",
                  f"refused, legality:      {self.count(lambda r: r.status == 'legality')}"
                  f"  (witness checked {self.count(lambda r: r.witness == 'checked')}, "
@@ -1062,7 +1113,7 @@ def kernel_text(source: str) -> str:
 def describe_failure(r: Result, whole: bool = False) -> str:
     src = r.files.get("case.c", "")
     parts = [f"--- case {r.index}: {r.status}" + (f", witness {r.witness}" if r.witness else ""),
-             f"request: looptile tile case.c --nest kernel {r.request}", r.detail.rstrip(),
+             f"request: looptile {r.verb} case.c --nest kernel {r.request}", r.detail.rstrip(),
              "case.c:" if whole else "case.c (declarations and kernel; main() hashes every array):",
              src if whole else kernel_text(src)]
     return "\n".join(parts)
