@@ -204,8 +204,17 @@ def _describe(node: c_ast.Node) -> str:
     return f"it is a {type(node).__name__}"
 
 
+def declared_in_nest(ctx: Ctx, name: str) -> bool:
+    """Is ``name`` a variable declared inside the nest's body (in scope here)? It then hides
+    any iterator, parameter or global of that name."""
+    return any(name in scope for scope in ctx.locals_)
+
+
 def _id_affine(ctx: Ctx, node: c_ast.ID) -> tuple[Affine, CType, list[Affine]]:
     name = node.name
+    if declared_in_nest(ctx, name):
+        raise NotAffine(f"'{name}' is a variable declared inside the nest, whose value the analysis does not "
+                        "follow", node)
     if name in ctx.iterators:
         return Affine.symbol(name), ctx.loop_types[name], []
     sym = ctx.scope.get(name)
@@ -271,6 +280,8 @@ def text_affine(ctx: Ctx, toks: list[Token]) -> Affine | None:
                 raise NotAffine("literal")
             return Affine(const=int(t.text.rstrip("uUlL")))
         if t.kind == "id":
+            if declared_in_nest(ctx, t.text):
+                raise NotAffine("local")
             body = ctx.tu.macros.get(t.text)
             if body is not None:
                 b = body.strip("() ")

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from pycparser import c_ast
 
-from .affine import AboveMax, Ctx, NotAffine, column_on_line, int_affine, outer_iterators
+from .affine import AboveMax, Ctx, NotAffine, column_on_line, declared_in_nest, int_affine, outer_iterators
 from .ctype import CType
 from .headers import extract_loop
 from .model import Access, Affine, ArrayInfo, Condition, Obligation, Statement
@@ -223,11 +223,12 @@ class BodyWalker:
         name = base.name
         for s in subs:
             self.expr(s)
-        if name in ctx.iterators and not subs:
+        local = declared_in_nest(ctx, name)
+        if name in ctx.iterators and not subs and not local:
             if write:
                 raise ctx.refuse(f"the body writes the iterator '{name}'", node)
             return
-        if name in outer_iterators(ctx) and not subs and not write:
+        if name in outer_iterators(ctx) and not subs and not write and not local:
             return
         key, info = self.array_of(name, base, len(subs))
         affs = []

@@ -140,6 +140,14 @@ def check_body(tu: TranslationUnit, nest: Nest, target: Loop, unrolled: set[str]
                     raise refuse("a declaration without a name (a struct or enum type) in the body would be "
                                  "declared once per copy", node=item)
                 renames.append(item.name)
+                line, col = item.coord.line, item.coord.column or 1
+                at = src.line_starts[line - 1] + col - 1
+                prev = None
+                for t in tu.code_between(target.body_start, min(at, target.body_end)):
+                    if t.kind == "id" and t.text == item.name and not (prev is not None and prev.text in (".", "->")):
+                        raise refuse(f"the body uses '{item.name}' before it declares its own '{item.name}', so the "
+                                     "name means two things in one copy; rename the local", t.start)
+                    prev = t
     if renames and tu.flags.c89:
         raise refuse(f"the body declares {', '.join(renames)} and the file is C89: the copies would declare "
                      "after statements", node=body)

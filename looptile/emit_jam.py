@@ -244,9 +244,8 @@ class JamEmitter:
                     k = subst[t.text]
                     new = f"{t.text} + {k}" if k > 0 else f"{t.text} - {-k}"
                     nxt = next((x for x in tokenize(text, t.end, end) if x.kind != "comment"), None)
-                    # a whole subscript, argument or parenthesised expression needs no parentheses
-                    alone = prev is not None and prev.text in ("[", "(", ",") and \
-                        nxt is not None and nxt.text in ("]", ")", ",")
+                    # a whole subscript needs no parentheses (an argument might be a macro's)
+                    alone = prev is not None and prev.text == "[" and nxt is not None and nxt.text == "]"
                     if not alone:
                         new = f"({new})"
                 elif t.text in renames:

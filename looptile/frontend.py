@@ -158,6 +158,11 @@ def load(src: SourceFile, flags: CompileFlags) -> TranslationUnit:
     functions = _functions(ast, main, tokens, src)
     idents = {t.text for t in all_tokens if t.kind == "id"}
     idents |= set(re.findall(r"[A-Za-z_]\w*", pre.text))
+    # names in preprocessor lines and macros (also from -D): a fresh name must not be one of them
+    for t in all_tokens:
+        if t.kind == "pp":
+            idents |= set(re.findall(r"[A-Za-z_]\w*", t.text))
+    idents |= set(macros)
     pre_lines: dict[int, list[str]] = {}
     for ln, text in main_file_lines(pre.text, main):
         pre_lines.setdefault(ln, []).append(text)
