@@ -313,9 +313,11 @@ def _extra_nest(arr: str, rows: str, cols: str, k: int, rng: random.Random) -> l
     """A tileable element-wise pass over ``arr`` (no dependences between iterations)."""
     a, b = ("r", "q") if k % 2 else ("i", "j")
     if rng.random() < 0.5:
-        what, stmt = "rescale to model units", f"{arr}[{a}][{b}] = {arr}[{a}][{b}] * {rng.choice(['0.5', '1.5', '3.0'])};"
+        factor = rng.choice(['0.5', '1.5', '3.0'])
+        what, stmt = "rescale to model units", f"{arr}[{a}][{b}] = {arr}[{a}][{b}] * {factor};"
     else:
-        what, stmt = "add the calibration offset", f"{arr}[{a}][{b}] = {arr}[{a}][{b}] + {rng.choice(['0.01', '0.1', '1.0'])};"
+        offset = rng.choice(['0.01', '0.1', '1.0'])
+        what, stmt = "add the calibration offset", f"{arr}[{a}][{b}] = {arr}[{a}][{b}] + {offset};"
     return [
         "",
         f"    /* clean-up pass {k}: {what} */",

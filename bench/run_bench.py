@@ -42,10 +42,10 @@ from __future__ import annotations
 
 import argparse
 import cProfile
-import functools
-import inspect
 import datetime
+import functools
 import glob
+import inspect
 import io
 import json
 import math
@@ -295,7 +295,7 @@ def tile_sample(sites, per_kind: int) -> list:
     for s in sites:
         by_kind[s.function.rsplit("_", 1)[-1]].append(s)
     out = []
-    for kind, ss in sorted(by_kind.items()):
+    for _kind, ss in sorted(by_kind.items()):
         funcs = []
         for s in ss:
             if s.function not in funcs:
@@ -459,7 +459,8 @@ def markdown(results: dict) -> str:
     row("analyze outcomes", lambda r: ", ".join(f"{k} {v}" for k, v in r["outcomes"]["analyze"].items()))
     row("tile core outcomes (all nests)", lambda r: ", ".join(
         f"{k} {v}" for k, v in r["outcomes"]["tile_core"].items() if not k.startswith(" ")))
-    row("tile full outcomes (full sample)", lambda r: ", ".join(f"{k} {v}" for k, v in r["outcomes"]["tile_full"].items()))
+    row("tile full outcomes (full sample)",
+        lambda r: ", ".join(f"{k} {v}" for k, v in r["outcomes"]["tile_full"].items()))
     out.append("")
     out.append("| CLI run | wall time, s: median (min; all runs) | peak RSS, MB (max) | exit codes |")
     out.append("|---|---|---|---|")
@@ -520,6 +521,7 @@ def machine() -> dict:
     cc = subprocess.run(["cc", "--version"], capture_output=True, text=True).stdout.splitlines()
     import islpy
     import pycparser
+
     import looptile
     pkg = os.path.dirname(os.path.dirname(os.path.abspath(looptile.__file__)))
     if os.path.samefile(pkg, ROOT):

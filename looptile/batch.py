@@ -248,9 +248,9 @@ def _copy_jobs():
     return jam_job if hasattr(jam_job, "jam") and hasattr(jam_job, "unroll") else None
 
 
-def _tile_takes_jam() -> bool:
-    """Whether the tile job can unroll-and-jam inside the tiles (``TileRequest.jam``)."""
-    return {"jam", "scalarize"} <= {f.name for f in fields(TileRequest)}
+def _tile_takes(*names: str) -> bool:
+    """Whether the tile job takes these requests (``TileRequest.jam``, ``.levels``...)."""
+    return set(names) <= {f.name for f in fields(TileRequest)}
 
 
 def run_job(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipeline.TileOptions):
@@ -262,8 +262,15 @@ def run_job(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipel
                           "its nest are left as they are", **where)
     if d.tile is not None:  # tiling or a permutation, perhaps with unroll-and-jam inside the tiles
         req = d.tile
+        if d.levels:
+            if not _tile_takes("levels"):
+                line, col = tu.source.line_col(d.level_offset or p.offset)
+                raise Refusal("not carried out: multi-level tiling is not supported yet: give one tile(...) clause "
+                              "(this one is a second level)", path=tu.source.path, line=line, column=col,
+                              source_line=tu.source.line_text(line))
+            req = replace(req, levels=d.levels)
         if d.jam is not None or d.scalarize:
-            if not _tile_takes_jam():
+            if not _tile_takes("jam", "scalarize"):
                 raise unavailable
             req = replace(req, jam=d.jam.factors if d.jam else (), scalarize=d.scalarize)
         return pipeline.tile(tu, sel, req, topts)
@@ -286,6 +293,7 @@ def run_job(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipel
 
 def _verify(tu: TranslationUnit, outcome, d: directives.Directive, check: VerifyOptions) -> tuple[str, ...]:
     sizes = tuple(s for _, s in d.tile.sizes) if d.tile is not None else ()
+    sizes += tuple(s for level in d.levels for _, s in level)
     sizes += tuple(u for _, u in d.jam.factors) if d.jam is not None else ()
     sizes += (d.unroll.factor,) if d.unroll is not None and d.unroll.factor is not None else ()
     nest = outcome.nest
@@ -366,15 +374,16 @@ def combine(tu: TranslationUnit, results: list[_Result]) -> tuple[tuple[Directiv
 
 
 def _note_inner(o: DirectiveOutcome, site: LoopSite | None, accepted: list[_Result]) -> DirectiveOutcome:
-    """A refused directive whose nest holds a directive carried out in this run: a second run
-    sees the rewritten inner nest instead of its directive."""
+    """A refused directive whose nest holds a directive carried out in this run: say so (a second
+    run would meet the generated loops, which looptile does not analyse)."""
     if o.status != "refused" or site is None:
         return o
     inner = [a.outcome.line for a in accepted if a.site is not None and _encloses(site, a.site)]
     if not inner:
         return o
-    note = (f"the directive at line {inner[0]} inside this nest is carried out in this run; run apply again to "
-            "try this one on the rewritten nest")
+    note = (f"the directive at line {inner[0]} inside this nest is carried out in this run, and looptile does not "
+            "analyse the loops it generates, so this one stays refused; to transform both, give one directive on "
+            "this nest that names their loops")
     return replace(o, details=o.details + (note,), rendered=(o.rendered or "") + "\n  " + note)
 
 

@@ -451,6 +451,8 @@ def apply_cmd(paths: tuple[str, ...], as_diff: bool, outdir: str | None, in_plac
     base = batch.common_base(list(paths))
     if outdir and os.path.realpath(outdir) == base:
         raise UsageError(f"-o {outdir} is the input directory itself; use --in-place to rewrite the files there")
+    if report_path and not os.access(os.path.dirname(os.path.abspath(report_path)), os.W_OK):
+        raise UsageError(f"--report {report_path}: its directory does not exist or cannot be written")
     files = batch.c_files(list(paths), exclude=outdir)
     opts = batch.ApplyOptions(from_options(kw["includes"], kw["isystem"], kw["defines"], kw["undefines"],
                                            kw["include_files"], kw["std"]), kw.get("compile_db"),

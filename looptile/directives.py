@@ -11,8 +11,9 @@ Two families are read from ``#pragma`` lines:
   ``#pragma omp interchange`` (OpenMP 6.0) is recognised and refused: its exact form
   could not be checked against the specification text.
 - looptile's own ``#pragma looptile`` with the clauses ``tile(i=32, j=32)``,
-  ``jam(i=4)``, ``order(ii, jj, i, j)``, ``remainder(split|clamp)`` and ``scalarize``
-  (the grammar is in the README).
+  ``jam(i=4)``, ``order(ii, jj, i, j)``, ``remainder(split|clamp)`` and ``scalarize``;
+  ``tile(...)`` is repeatable, one clause per level, outermost first (the grammar is in
+  the README).
 
 Output: ``Found`` records, each with a typed ``Directive`` (the ``TileRequest`` of the
 tile job, ``JamDirective``, ``UnrollDirective``) and the loop it applies to, or the
@@ -74,6 +75,8 @@ class Directive:
     unroll: UnrollDirective | None = None
     scalarize: bool = False
     size_macros: tuple[tuple[str, int], ...] = ()  # sizes written as macros, with the values used
+    levels: tuple[tuple[tuple[str, int], ...], ...] = ()  # tile(...) clauses after the first: levels 2, 3, ...
+    level_offset: int | None = None  # where the second tile(...) clause is written
 
 
 @dataclass(frozen=True)
@@ -391,9 +394,6 @@ def _looptile(p: Pragma, parser: _Parser) -> Directive:
         else:
             remainder = _remainder(parser, items)
     tiles = [name for name, _ in clauses if name.text == "tile"]
-    if len(tiles) > 1:
-        raise parser.refuse("multi-level tiling is not supported yet: give one tile(...) clause (this is a second "
-                            "level)", tiles[1])
     if remainder is not None and not levels:
         raise parser.error("remainder(...) chooses how partial tiles run; it needs a tile(...) clause",
                            seen["remainder"])
@@ -404,7 +404,8 @@ def _looptile(p: Pragma, parser: _Parser) -> Directive:
         raise parser.error("jam(...) with order(...) jams inside tiles, so it needs tile(...); without tiles give "
                            "jam(...) alone", seen["jam"])
     tile = TileRequest(levels[0] if levels else (), order, remainder or "split") if levels or order else None
-    return Directive(p, tile, remainder is None, jam, None, "scalarize" in seen, tuple(parser.used_macros))
+    return Directive(p, tile, remainder is None, jam, None, "scalarize" in seen, tuple(parser.used_macros),
+                     tuple(levels[1:]), tiles[1].offset if len(tiles) > 1 else None)
 
 
 _EXAMPLE = {"tile": "tile(i=32, j=32)", "jam": "jam(i=4)", "order": "order(ii, jj, i, j)",
@@ -415,8 +416,9 @@ def _order(parser: _Parser, items: list[list[_Tok]]) -> tuple[str, ...]:
     order = []
     for item in items:
         text = "".join(t.text for t in item)
-        if len(item) not in (1, 3) or not re.fullmatch(r"[A-Za-z_]\w*(?:\.\d+)?", text):
-            raise parser.error(f"order(...) lists loop names (i, ii or i.1), not '{parser.spelled(item)}'", item[0])
+        if len(item) > 3 or not re.fullmatch(r"[A-Za-z_]\w*(?:\.\d+)?", text):
+            raise parser.error(f"order(...) lists loop names (i, ii or i.1, iii or i.2), not "
+                               f"'{parser.spelled(item)}'", item[0])
         order.append(text)
     return tuple(order)
 

@@ -158,9 +158,10 @@ def load(src: SourceFile, flags: CompileFlags) -> TranslationUnit:
     functions = _functions(ast, main, tokens, src)
     idents = {t.text for t in all_tokens if t.kind == "id"}
     idents |= set(re.findall(r"[A-Za-z_]\w*", pre.text))
-    # names in preprocessor lines and macros (also from -D): a fresh name must not be one of them
+    # names that macros define or test (also from -D): a fresh name must not be one of them;
+    # names in pragmas (a directive's order(ii, i)) are not taken
     for t in all_tokens:
-        if t.kind == "pp":
+        if t.kind == "pp" and re.match(r"#\s*(define|undef|if|ifdef|ifndef|elif)\b", t.text):
             idents |= set(re.findall(r"[A-Za-z_]\w*", t.text))
     idents |= set(macros)
     pre_lines: dict[int, list[str]] = {}
