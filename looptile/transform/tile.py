@@ -6,7 +6,7 @@ order as slots, and the schedule that deps.py proves and emit.py prints).
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from ..errors import Refusal, UsageError
 from ..model import Affine, Nest, ScheduleDim
@@ -294,7 +294,7 @@ def _scan_slot(nest: Nest, slot: Slot, scan: ScanFn | None) -> Slot:
     except ValueError as exc:
         raise Refusal(f"after the reordering, the bounds of loop '{slot.iterator}' are not a max/min of affine "
                       f"expressions ({exc})", **where) from None
-    return Slot(slot.kind, slot.iterator, slot.name, slot.size, slot.hull, slot.defined, bounds)
+    return replace(slot, scan=bounds)
 
 
 def _hull_slot(nest: Nest, slot: Slot, hull: HullFn | None) -> Slot:
@@ -311,7 +311,7 @@ def _hull_slot(nest: Nest, slot: Slot, hull: HullFn | None) -> Slot:
         raise Refusal(f"the tile loop of '{slot.iterator}' needs bounds that are not affine (or a max/min of "
                       f"affine expressions at the far end) ({exc}); tile a rectangular band or choose another "
                       "order", **where) from None
-    return Slot(slot.kind, slot.iterator, slot.name, slot.size, lo_hi, slot.defined)
+    return replace(slot, hull=lo_hi)
 
 
 def _dim(nest: Nest, slot: Slot) -> ScheduleDim:
