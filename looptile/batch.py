@@ -283,8 +283,10 @@ def run_job(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipel
         return jobs.jam(tu, sel, JamRequest(d.jam.factors), topts, **extra)
     assert d.unroll is not None
     if d.unroll.full:
-        raise Refusal("not carried out: full unrolling is not available in this version; write partial(N)",
-                      **where)
+        if not hasattr(jobs, "unroll_full"):
+            raise Refusal("not carried out: full unrolling is not available in this version; write partial(N)",
+                          **where)
+        return jobs.unroll_full(tu, sel, topts)
     if d.unroll.factor is None:
         raise Refusal("not carried out: the directive leaves the unroll factor to the implementation, and "
                       "looptile needs one; write partial(N)", **where)

@@ -335,7 +335,8 @@ def _parse_factors(spec: str, option: str = "--factors") -> tuple[tuple[str, int
 
 
 def _copy_command(kind: str, file: str, nest: str, spec: str, kw: dict) -> str:
-    parts = ["looptile", kind, file, "--nest", nest, "--factors" if kind == "jam" else "--factor", spec]
+    parts = ["looptile", kind, file, "--nest", nest] + (
+        ["--full"] if spec == "full" else ["--factors" if kind == "jam" else "--factor", spec])
     if kw.get("scalarize"):
         parts.append("--scalarize")
     if kw.get("compile_db"):
@@ -371,6 +372,8 @@ def _copy_job(kind: str, file: str, nest: str, spec: str, as_diff: bool, output:
         if kind == "jam":
             factors = _parse_factors(spec)
             sizes = tuple(u for _, u in factors)
+        elif spec == "full":
+            sizes = ()
         else:
             try:
                 sizes = (int(spec),)
@@ -379,6 +382,8 @@ def _copy_job(kind: str, file: str, nest: str, spec: str, as_diff: bool, output:
         tu = pipeline.load(file, _flags(file, kw))
         if kind == "jam":
             outcome = jam_job.jam(tu, nest, jam_job.JamRequest(factors), opts, scalarize)
+        elif spec == "full":
+            outcome = jam_job.unroll_full(tu, nest, opts)
         else:
             outcome = jam_job.unroll(tu, nest, sizes[0], opts)
         report = verify(tu, outcome.new, outcome.nest.function, _verify_options(kw, sizes)) if check else None
@@ -416,15 +421,18 @@ def jam(file: str, nest: str, factors: str, scalarize: bool, as_diff: bool, outp
 @main.command()
 @click.argument("file")
 @click.option("--nest", "nest", required=True, metavar="SEL", help="L<line>, FUNC or FUNC:K: the loop to unroll.")
-@click.option("--factor", "factor", required=True, metavar="N", help="How many copies of the body per iteration.")
+@click.option("--factor", "factor", metavar="N", help="How many copies of the body per iteration.")
+@click.option("--full", is_flag=True, help="Unroll completely (the trip count must be a constant): no loop is left.")
 @output_options
 @check_options
 @frontend_options
 @reporting
-def unroll(file: str, nest: str, factor: str, as_diff: bool, output: str | None, in_place: bool, force: bool,
-           check: bool, **kw) -> None:
+def unroll(file: str, nest: str, factor: str | None, full: bool, as_diff: bool, output: str | None, in_place: bool,
+           force: bool, check: bool, **kw) -> None:
     """Plain unrolling of one loop (its body, inner loops included, copied N times, with a remainder loop)."""
-    _copy_job("unroll", file, nest, factor, as_diff, output, in_place, force, check, kw)
+    if full == (factor is not None):
+        raise click.UsageError("give either --factor N or --full")
+    _copy_job("unroll", file, nest, "full" if full else factor, as_diff, output, in_place, force, check, kw)
 
 
 @main.command(name="apply")

@@ -14,7 +14,7 @@ from .emit_jam import (
     Offsets,
     ScalarGroup,
     expected_items,
-    fors_in_order,
+    holders_in_order,
     reference_end,
 )
 from .errors import InternalError, Refusal
@@ -208,7 +208,7 @@ def check_copies(tu: TranslationUnit, nest: Nest, new: bytes, body: c_ast.Node, 
     try:
         ast = c_parser.CParser().parse(prelude + "void looptile_region_check(void) {\n" + "\n".join(region) + "\n}\n",
                                        "<region>")
-        fors = fors_in_order(ast.ext[-1].body)
+        fors = holders_in_order(ast.ext[-1].body)
     except Exception:  # noqa: BLE001 - fall back to the whole file
         pass
     if fors is None:
@@ -218,19 +218,22 @@ def check_copies(tu: TranslationUnit, nest: Nest, new: bytes, body: c_ast.Node, 
             raise InternalError(f"the rewritten nest does not parse ({exc}); this is a looptile bug, please report "
                                 "it", path=src.path, line=nest.line, column=nest.col) from exc
         fors = [f for ext in ast.ext if isinstance(ext, c_ast.FuncDef) and ext.decl.name == nest.function
-                for f in fors_in_order(ext.body)]
-    by_line: dict[int, c_ast.For] = {}
+                for f in holders_in_order(ext.body)]
+    by_line: dict[tuple[bool, int], c_ast.Node] = {}
     for f in fors:
         if f.coord is not None and f.coord.file == "<stdin>":
-            by_line.setdefault(f.coord.line, f)
+            by_line.setdefault((isinstance(f, c_ast.Compound), f.coord.line), f)
     gen = c_generator.CGenerator()
     for line, site in sites:
-        node = by_line.get(line)
+        node = by_line.get((site.block, line))
         if node is None:
-            raise InternalError(f"the rewritten nest has no loop on line {line} where one was emitted; this is a "
-                                "looptile bug", path=src.path, line=nest.line, column=nest.col)
-        got = node.stmt
+            raise InternalError(f"the rewritten nest has no {'block' if site.block else 'loop'} on line {line} where "
+                                "one was emitted; this is a looptile bug", path=src.path, line=nest.line,
+                                column=nest.col)
+        got = node if site.block else node.stmt
         got_items = list(got.block_items or []) if isinstance(got, c_ast.Compound) else [got]
+        if site.block:
+            got_items = got_items[site.skip_front: len(got_items) - site.skip_back]
         want = expected_items(body, site.copies, facts, site.scalars)
         if len(got_items) != len(want) or any(gen.visit(a) != gen.visit(b) for a, b in zip(got_items, want)):
             raise InternalError("a copy of the body does not parse to the substituted original; this is a looptile "

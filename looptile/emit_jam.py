@@ -42,10 +42,14 @@ class ScalarGroup:
 
 @dataclass(frozen=True)
 class CopySite:
-    """A loop that holds these copies of the body, in this order."""
+    """A loop (or, for full unrolling, a block) that holds these copies of the body, in this
+    order; a block also holds ``skip_front`` statements before them and ``skip_back`` after."""
 
     copies: tuple[Offsets, ...]
     scalars: tuple[ScalarGroup, ...] = ()
+    block: bool = False
+    skip_front: int = 0
+    skip_back: int = 0
 
 
 @dataclass(frozen=True)
@@ -195,16 +199,20 @@ class JamEmitter:
         site = CopySite(copies, groups)
         self.sites.append(site)
         out.append(SiteLine(ind, header + " {", site))
-        start, _ = self.body_range()
-        before = self.src.text[self.src.line_starts[self.src.line_col(start)[0] - 1]:start]
-        lead = before if not before.strip() else None
+        lead = self.lead()
         for n, offs in enumerate(copies):
-            out += _reindent(self.copy_text(offs, n, groups), ind + self.unit, lead)
+            out += reindent(self.copy_text(offs, n, groups), ind + self.unit, lead)
         out.append(Line(ind, "}"))
         if groups:
             out += [Line(ind, f"{g.element} = {g.name};") for g in groups if g.store]
             out.append(Line(ind[: -len(self.unit)], "}"))
         return out
+
+    def lead(self) -> str | None:
+        """The whitespace before the copied text on its first line (None when code precedes it)."""
+        start, _ = self.body_range()
+        before = self.src.text[self.src.line_starts[self.src.line_col(start)[0] - 1]:start]
+        return before if not before.strip() else None
 
     def _compound(self) -> bool:
         return isinstance(self.body_ast, c_ast.Compound)
@@ -280,7 +288,7 @@ def reference_end(text: str, start: int, end: int) -> int:
     return pos
 
 
-def _reindent(text: str, indent: str, lead: str | None = "") -> list[Line]:
+def reindent(text: str, indent: str, lead: str | None = "") -> list[Line]:
     """Lines of ``text`` with their common leading whitespace replaced by ``indent``; blank
     lines at either end dropped. ``lead``: the whitespace before the text on its first line in
     the file (None when code precedes it there)."""
@@ -322,6 +330,16 @@ def _fors(node: c_ast.Node):
 
 def fors_in_order(node: c_ast.Node) -> list[c_ast.For]:
     return list(_fors(node))
+
+
+def holders_in_order(node: c_ast.Node) -> list[c_ast.Node]:
+    """For statements and blocks under ``node``, in textual order."""
+    out = []
+    if isinstance(node, (c_ast.For, c_ast.Compound)):
+        out.append(node)
+    for _, child in node.children():
+        out += holders_in_order(child)
+    return out
 
 
 # ---------------------------------------------------------------- the copies on the syntax tree

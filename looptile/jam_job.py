@@ -8,8 +8,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field, replace
 
 from .copies import body_node, check_body, check_copies, scalarizer
-from .emit import Line, render
-from .emit_jam import JamEmitter, JamFacts, fresh_names, plain_forms, site_lines
+from .emit import Line, literal, render
+from .emit_jam import CopySite, JamEmitter, JamFacts, SiteLine, fresh_names, plain_forms, reindent, site_lines
 from .errors import Refusal
 from .frontend import TranslationUnit
 from .model import Nest
@@ -24,7 +24,7 @@ from .pipeline import (
     select,
 )
 from .splice import Edit, apply_edits
-from .transform.jam import JamPlan, JamRequest, plan_jam, plan_unroll  # noqa: F401 - JamRequest re-exported
+from .transform.jam import MAX_COPIES, JamPlan, JamRequest, plan_jam, plan_unroll  # noqa: F401 - JamRequest re-exported
 
 
 @dataclass(frozen=True)
@@ -47,6 +47,72 @@ def jam(tu: TranslationUnit, sel: str, req: JamRequest, opts: TileOptions, scala
 def unroll(tu: TranslationUnit, sel: str, factor: int, opts: TileOptions) -> JamOutcome:
     """Plain unrolling of the selected loop (its whole body copied ``factor`` times)."""
     return _job(tu, sel, opts, lambda nest: plan_unroll(nest, factor))
+
+
+def unroll_full(tu: TranslationUnit, sel: str, opts: TileOptions) -> JamOutcome:
+    """Full unrolling of the selected loop, whose trip count must be a constant: one copy of
+    its body per iteration, in order, and no loop (OpenMP's ``unroll full``)."""
+    src = tu.source
+    site = select(tu, sel)
+    _check_not_rewritten(tu, site, opts)
+    nest, _analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive)
+    lp = nest.perfect[0]
+    where = dict(path=nest.path, line=lp.line, column=lp.col, source_line=src.line_text(lp.line))
+    names = sorted(lp.start.value.names() | lp.limit.value.names())
+    if names:
+        raise Refusal(f"full unrolling needs a constant trip count, and the bounds of '{lp.iterator}' use "
+                      f"{', '.join(repr(n) for n in names)}; unroll it partially instead", **where)
+    values = _iteration_values(lp)
+    if len(values) > MAX_COPIES:
+        raise Refusal(f"loop '{lp.iterator}' runs more than {MAX_COPIES} times; full unrolling would make too many "
+                      "copies of its body (unroll it partially instead)", **where)
+    plan = JamPlan((lp.iterator,), ((lp.iterator, max(len(values), 1)),), "unroll-full", ())
+    body = body_node(tu, lp.for_offset)
+    renames = check_body(tu, nest, lp, {lp.iterator}, len(values), body)
+    facts = JamFacts(frozenset(), tu.flags.c89, tuple(renames),
+                     fresh_names(renames, len(values), tu.identifiers) if renames else ())
+    em = JamEmitter(src, lp, [], facts, body, src.indent_of(nest.start))
+    unit, base = src.indent_unit, em.base
+    start = lp.start.text
+    first = f"{lp.ctype.spelling} {lp.iterator} = {start};" if lp.declared_in_for else f"{lp.iterator} = {start};"
+    copies = tuple(((lp.iterator, v - values[0]),) for v in values)
+    site_ = CopySite(copies, block=True, skip_front=1, skip_back=0 if lp.declared_in_for else 1)
+    lines = [Line(base, ln) for ln in guard_text(nest, plan, _analysis, opts).split("\n")]
+    lines += [Line(base, c.replace("\r\n", "\n")) for c in nest.header_comments]
+    lines.append(SiteLine(base, "{", site_))
+    lines.append(Line(base + unit, first))
+    for n, offs in enumerate(copies):
+        lines += reindent(em.copy_text(offs, n), base + unit, em.lead())
+    if not lp.declared_in_for:  # the value the loop leaves in its iterator
+        lines.append(Line(base + unit, f"{lp.iterator} = {literal(_next_value(lp, values), lp)};"))
+    lines.append(Line(base, "}"))
+    text, prefix = finish_nest_text(src, nest, render("nest.c.j2", lines=lines))
+    removed = directive_removal(tu, opts.directive)
+    new = apply_edits(src.data, [Edit(nest.start, nest.end, text)] + removed)
+    shift = sum(src.line_col(e.end)[0] - src.line_col(e.start)[0] for e in removed)
+    top = nest.line - shift + prefix
+    if copies:
+        check_copies(tu, nest, new, body, facts, [(top + k, s) for k, s in site_lines(lines)],
+                     (top, top + text.count("\n")))
+    return JamOutcome(src.path, src.data, new, nest, plan, tuple(f"assumed: {a}" for a in opts.assumptions))
+
+
+def _iteration_values(lp) -> list[int]:
+    """The values a loop with constant bounds gives its iterator (at most MAX_COPIES + 1)."""
+    out: list[int] = []
+    v, limit = lp.start.value.const, lp.limit.value.const
+    while len(out) <= MAX_COPIES and _runs(lp, v, limit):
+        out.append(v)
+        v += lp.step * lp.direction
+    return out
+
+
+def _runs(lp, v: int, limit: int) -> bool:
+    return {"<": v < limit, "<=": v <= limit, ">": v > limit, ">=": v >= limit}[lp.op]
+
+
+def _next_value(lp, values: list[int]) -> int:
+    return values[-1] + lp.step * lp.direction if values else lp.start.value.const
 
 
 def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan, scalarize: bool = False) -> JamOutcome:

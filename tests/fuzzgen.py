@@ -126,6 +126,7 @@ class Request:
     default_order: bool
     note: str = ""
     factors: tuple[tuple[str, int], ...] = ()  # jam and unroll: (iterator, factor), outermost first
+    sizes2: tuple[int, ...] = ()  # a second level of tiles (README: each divides the size outside); slot "tile2"
 
     @property
     def verb(self) -> str:
@@ -469,12 +470,39 @@ def _gen_request(rng: random.Random, perfect: list[LoopSpec]) -> Request:
         args += ["--order", ",".join(_token(rng, k, it) for k, it in (slots if full else listed))]
     if rng.random() < 0.3:
         args += ["--remainder", "clamp"]
+    if all(sz > 1 for sz in sizes) and rng.random() < 0.2:
+        return _second_level(rng, band, sizes, slots, args)
     return Request("tile", tuple(band), tuple(sizes), tuple(slots), tuple(args), default_order)
+
+
+def _second_level(rng: random.Random, band: list[str], sizes: list[int], slots: list[tuple[str, str]],
+                  args: list[str]) -> Request:
+    """Add a second level of tiles inside the first: sizes that divide the first level's
+    (README, multi-level tiling), the level-2 tile loops placed anywhere after their level-1
+    tile loop and before their point loop."""
+    sizes2 = [rng.choice([d for d in range(1, sz + 1) if sz % d == 0]) for sz in sizes]
+    args = [a for a in args]
+    k = args.index("--sizes") + 2
+    args[k:k] = ["--sizes", ",".join(f"{b}={d}" for b, d in zip(band, sizes2))]
+    new = list(slots)
+    for b in band:
+        lo = new.index(("tile", b)) + 1
+        hi = new.index(("point", b))
+        new.insert(rng.randint(lo, hi), ("tile2", b))
+    if "--order" in args:
+        j = args.index("--order")
+        listed = [x for x in new if x[0] != "loop" or x[1] in args[j + 1].split(",")]
+        args[j + 1] = ",".join(_token(rng, kind, it) for kind, it in listed)
+    else:
+        args += ["--order", ",".join(_token(rng, kind, it) for kind, it in new)]
+    return Request("tile", tuple(band), tuple(sizes), tuple(new), tuple(args), False, sizes2=tuple(sizes2))
 
 
 def _token(rng: random.Random, kind: str, it: str) -> str:
     if kind == "tile":
         return it * 2 if rng.random() < 0.6 else f"{it}.1"
+    if kind == "tile2":
+        return it * 3 if rng.random() < 0.6 else f"{it}.2"
     return it
 
 
@@ -1023,11 +1051,19 @@ def new_order_key(case: Case, ev: Event, domain: list[tuple[int, ...]], params: 
     pos = {lp.it: k for k, lp in enumerate(perf)}
     vals = {lp.it: ev.vals[k] for k, lp in enumerate(perf)}
     sizes = dict(zip(case.request.band, case.request.sizes))
+    sizes2 = dict(zip(case.request.band, case.request.sizes2))
     key: list[int] = []
     defined: list[str] = []
     for kind, it in case.request.slots:
         lp = perf[pos[it]]
         x = vals[it]
+        if kind == "tile2":
+            # the level-2 tiles of a rectangular loop: they start at the level-1 tile, which starts
+            # at the loop's initial value plus a multiple of T1; T2 divides T1, so that is a grid of
+            # T2 from the initial value
+            origin = eval(lp.init, {"__builtins__": {}}, {**params, **vals})  # noqa: S307 - our own text
+            key.append((lp.direction * (x - origin)) // (abs(lp.step) * sizes2[it]))
+            continue
         if kind == "tile":
             refs = set(lp.uses) & set(pos)
             if not (refs - set(defined)) and not any(it in perf[pos[d]].uses for d in defined):

@@ -353,8 +353,9 @@ def test_unrolling_and_jamming_directives(tmp_path, monkeypatch):
     assert r.exit_code == 1
     heads = [ln for ln in r.stderr.split("\n") if ": refused: " in ln or ": error: " in ln]
     assert heads == [
-        f"{src}:{lines[3]}:5: refused: not carried out: full unrolling is not available in this version; write "
-        "partial(N)",
+        # full unrolling needs a constant trip count (refused at the loop, whose bound is the reason)
+        f"{src}:{lines[3] + 1}:5: refused: full unrolling needs a constant trip count, and the bounds of 'i' use "
+        "'n'; unroll it partially instead",
         f"{src}:{lines[4]}:5: refused: not carried out: the directive leaves the unroll factor to the "
         "implementation, and looptile needs one; write partial(N)"]
     text = (out / "lamp.c").read_text()

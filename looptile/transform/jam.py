@@ -47,6 +47,8 @@ class JamPlan:
 
     def describe(self) -> str:
         spec = ", ".join(f"{it} by {u}" for it, u in self.factors)
+        if self.kind == "unroll-full":
+            return f"unrolled loop '{self.loops[0]}' fully: one copy of its body per iteration, no loop"
         if self.kind == "unroll":
             return f"unrolled {spec}, with a remainder loop"
         kept = "; elements that loop keeps touching are held in locals" if self.scalarize else ""
