@@ -291,16 +291,17 @@ def tile(file: str, nest: str, sizes: tuple[str, ...], order: str | None, remain
         if exc.path is None:  # a usage error about this file's request: say which file
             exc.path = file
         raise
+    _deliver(file, outcome, report, as_diff, output, in_place)
+
+
+def _deliver(file: str, outcome, report, as_diff: bool, output: str | None, in_place: bool) -> None:
+    """The --verify report (stop if it failed), notes to stderr, then the result as a diff, to OUT,
+    in place, or to stdout."""
     if report is not None:
         for line in report.lines:
             click.echo(line, err=True)
         if report.status != 0:
             sys.exit(report.status)
-    _deliver(file, outcome, as_diff, output, in_place)
-
-
-def _deliver(file: str, outcome, as_diff: bool, output: str | None, in_place: bool) -> None:
-    """Notes to stderr, then the result as a diff, to OUT, in place, or to stdout."""
     for note in outcome.notes:
         click.echo(f"{file}:{outcome.nest.line}:{outcome.nest.col}: note: {note}", err=True)
     if as_diff:
@@ -391,12 +392,7 @@ def _copy_job(kind: str, file: str, nest: str, spec: str, as_diff: bool, output:
         if exc.path is None:
             exc.path = file
         raise
-    if report is not None:
-        for line in report.lines:
-            click.echo(line, err=True)
-        if report.status != 0:
-            sys.exit(report.status)
-    _deliver(file, outcome, as_diff, output, in_place)
+    _deliver(file, outcome, report, as_diff, output, in_place)
 
 
 @main.command()

@@ -23,6 +23,19 @@ from .model import Affine, Loop, Nest
 from .source import tokenize
 
 
+def wide_distances(nest: Nest, analysis, iterators) -> frozenset[str]:
+    """The unrolled loops whose distance to the bound must be computed unsigned: signed
+    iterators whose low end isl cannot prove non-negative."""
+    wide = set()
+    for it in iterators:
+        lp = nest.loop(it)
+        low = lp.start.value if lp.direction > 0 else lp.limit.value
+        outer = nest.iterators[: nest.iterators.index(it)]
+        if not lp.ctype.is_unsigned and not analysis.always_nonnegative(low, outer):
+            wide.add(it)
+    return frozenset(wide)
+
+
 def shift_affine(a: Affine, offs: dict[str, int]) -> Affine:
     """``a`` with each iterator x replaced by x + offs[x]."""
     return a + Affine(const=sum(a.coeff(x) * k for x, k in offs.items()))

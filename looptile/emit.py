@@ -426,29 +426,25 @@ class NestEmitter:
 
     def _form(self, s: Slot, mode: str, tiles: dict[str, str]):
         """How a loop inside the tiles is emitted when the plan unrolls and jams (emit_jam.LoopForm)."""
-        from .emit_jam import LoopForm, distance
+        from .emit_jam import LoopForm, distance, own_bounds_form
         lp = self.loops[s.iterator]
         u = dict(self.plan.jam).get(s.iterator, 1)
+        wide = s.iterator in self.facts.wide_distance or s.iterator in self.jam.facts.wide_distance
+        if s.kind != "point" and s.scan is None:  # an untouched loop inside the tiles: its own header
+            return own_bounds_form(self.src, lp, u, wide)
         header = self._rest_header(s, mode, tiles)
         name, limit = s.name, self._limit(lp)
-        tile = tiles.get(s.iterator) if s.kind == "point" else None
-        if tile is None:
-            runs = f"{lp.start.text} {lp.op} {limit}"
-        else:
-            runs = "" if mode == "fast" else f"{tile} {lp.op} {limit}"
+        tile = tiles[s.iterator]
+        runs = "" if mode == "fast" else f"{tile} {lp.op} {limit}"
         if u == 1:
             return LoopForm(s.iterator, header=header, runs=runs)
         sign = "+" if lp.direction > 0 else "-"
         strip = literal(lp.step * u, lp)
-        wide = s.iterator in self.facts.wide_distance or s.iterator in self.jam.facts.wide_distance
         whole = f"{distance(lp, wide, limit)} >= {literal(full_form(lp, u), lp)}"
         step = self._step_text(lp)
         decl = f"{lp.ctype.spelling} {name};" if self._decl(lp, False) else None
-        if tile is None:
-            main = render("main_loop.c.j2", name=name, start=lp.start.text, op=lp.op, limit=limit,
-                          dist=distance(lp, wide, limit), full=literal(full_form(lp, u), lp), span=strip, sign=sign)
-            rem: str | None = render("jam_remainder.c.j2", name=name, op=lp.op, limit=limit, step=step)
-        elif mode == "fast":  # a whole tile: every strip is whole (the tile size is a multiple of u)
+        rem: str | None
+        if mode == "fast":  # a whole tile: every strip is whole (the tile size is a multiple of u)
             span = literal(lp.step * (s.size or 1), lp)
             main = f"for ({name} = {tile}; {name} {'<' if lp.direction > 0 else '>'} {tile} {sign} {span}; " \
                    f"{name} {sign}= {strip})"

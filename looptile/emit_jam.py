@@ -118,23 +118,23 @@ def site_lines(lines: list[Line]) -> list[tuple[int, CopySite]]:
     return [(k, ln.site) for k, ln in enumerate(lines) if isinstance(ln, SiteLine) and ln.site is not None]
 
 
+def own_bounds_form(src: SourceFile, lp: Loop, u: int, wide: bool) -> LoopForm:
+    """A loop with its own header, unrolled by ``u`` (1: as it is)."""
+    runs = f"{lp.start.text} {lp.op} {paren(lp.limit.text)}"
+    if u == 1:
+        return LoopForm(lp.iterator, header=loop_header(src, lp), runs=runs)
+    it, limit = lp.iterator, paren(lp.limit.text)
+    main = render("main_loop.c.j2", name=it, start=lp.start.text, op=lp.op, limit=limit, dist=distance(lp, wide),
+                  full=literal(full_form(lp, u), lp), span=literal(lp.step * u, lp),
+                  sign="+" if lp.direction > 0 else "-")
+    rem = render("jam_remainder.c.j2", name=it, op=lp.op, limit=limit, step=step_text(src, lp))
+    return LoopForm(it, u, decl=f"{lp.ctype.spelling} {it};" if lp.declared_in_for else None, main=main,
+                    remainder=rem, offset=lp.step * lp.direction, runs=runs)
+
+
 def plain_forms(src: SourceFile, nest: Nest, plan: JamPlan, facts: JamFacts) -> list[LoopForm]:
     """The covered loops of a nest unrolled in place (no tiling)."""
-    out = []
-    for it in plan.loops:
-        lp = nest.loop(it)
-        u = plan.factor(it)
-        runs = f"{lp.start.text} {lp.op} {paren(lp.limit.text)}"
-        if u == 1:
-            out.append(LoopForm(it, header=loop_header(src, lp), runs=runs))
-            continue
-        main = render("main_loop.c.j2", name=it, start=lp.start.text, op=lp.op, limit=paren(lp.limit.text),
-                      dist=distance(lp, it in facts.wide_distance), full=literal(full_form(lp, u), lp),
-                      span=literal(lp.step * u, lp), sign="+" if lp.direction > 0 else "-")
-        rem = render("jam_remainder.c.j2", name=it, op=lp.op, limit=paren(lp.limit.text), step=step_text(src, lp))
-        out.append(LoopForm(it, u, decl=f"{lp.ctype.spelling} {it};" if lp.declared_in_for else None, main=main,
-                            remainder=rem, offset=lp.step * lp.direction, runs=runs))
-    return out
+    return [own_bounds_form(src, nest.loop(it), plan.factor(it), it in facts.wide_distance) for it in plan.loops]
 
 
 class JamEmitter:

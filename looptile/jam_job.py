@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
 
-from .copies import body_node, check_body, check_copies, scalarizer
+from .copies import body_node, check_body, check_copies, scalarizer, wide_distances
 from .emit import Line, literal, render
 from .emit_jam import CopySite, JamEmitter, JamFacts, SiteLine, fresh_names, plain_forms, reindent, site_lines
 from .errors import Refusal
@@ -137,15 +137,7 @@ def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan, scalarize:
     target = nest.loop(plan.loops[-1])
     body = body_node(tu, target.for_offset)
     renames = check_body(tu, nest, target, {it for it, _ in plan.factors}, plan.copies, body)
-    wide = set()
-    for it, _ in plan.factors:
-        lp = nest.loop(it)
-        if lp.ctype.is_unsigned:
-            continue
-        low = lp.start.value if lp.direction > 0 else lp.limit.value
-        if not analysis.always_nonnegative(low, nest.iterators[: nest.iterators.index(it)]):
-            wide.add(it)
-    facts = JamFacts(frozenset(wide), tu.flags.c89, tuple(renames),
+    facts = JamFacts(wide_distances(nest, analysis, [it for it, _ in plan.factors]), tu.flags.c89, tuple(renames),
                      fresh_names(renames, plan.copies, tu.identifiers) if renames else ())
     em = JamEmitter(src, target, plain_forms(src, nest, plan, facts), facts, body, src.indent_of(nest.start))
     if scalarize:

@@ -391,7 +391,7 @@ def directive_removal(tu: TranslationUnit, directive: int | None) -> list[Edit]:
 
 def _jam_context(tu: TranslationUnit, nest: Nest, analysis: NestAnalysis, plan: TilePlan):
     """The copied body and what its copies need, for unroll-and-jam inside the tiles."""
-    from .copies import body_node, check_body, scalarizer
+    from .copies import body_node, check_body, scalarizer, wide_distances
     from .emit_jam import JamContext, JamEmitter, JamFacts, fresh_names
     target = nest.perfect[-1]
     body = body_node(tu, target.for_offset)
@@ -399,14 +399,7 @@ def _jam_context(tu: TranslationUnit, nest: Nest, analysis: NestAnalysis, plan: 
     for _, u in plan.jam:
         copies *= u
     renames = check_body(tu, nest, target, {it for it, _ in plan.jam}, copies, body)
-    wide = set()
-    for it, _ in plan.jam:
-        lp = nest.loop(it)
-        low = lp.start.value if lp.direction > 0 else lp.limit.value
-        outer = nest.iterators[: nest.iterators.index(it)]
-        if not lp.ctype.is_unsigned and not analysis.always_nonnegative(low, outer):
-            wide.add(it)
-    facts = JamFacts(frozenset(wide), tu.flags.c89, tuple(renames),
+    facts = JamFacts(wide_distances(nest, analysis, [it for it, _ in plan.jam]), tu.flags.c89, tuple(renames),
                      fresh_names(renames, copies, tu.identifiers) if renames else ())
     ctx = JamContext(body, target, facts)
     if plan.scalarize:
