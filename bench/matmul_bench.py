@@ -44,6 +44,8 @@ CONFIGS = [
      ["tile", "--sizes", "i=64,j=256,k=256", "--order", "jj,kk,ii,i,j,k", "--jam", "i=4,j=8", "--scalarize"]),
     ("tile i=96,j=128,k=256 + jam 6x8 + scalarize",
      ["tile", "--sizes", "i=96,j=128,k=256", "--order", "jj,kk,ii,i,j,k", "--jam", "i=6,j=8", "--scalarize"]),
+    ("tile i=96,j=128,k=256 + jam 6x8, no scalarize",
+     ["tile", "--sizes", "i=96,j=128,k=256", "--order", "jj,kk,ii,i,j,k", "--jam", "i=6,j=8"]),
     ("tile i=192,j=128,k=256 + jam 6x8 + scalarize",
      ["tile", "--sizes", "i=192,j=128,k=256", "--order", "jj,kk,ii,i,j,k", "--jam", "i=6,j=8", "--scalarize"]),
 ]
