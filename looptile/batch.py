@@ -380,21 +380,13 @@ def _note_inner(o: DirectiveOutcome, site: LoopSite | None, accepted: list[_Resu
     run would meet the generated loops, which looptile does not analyse)."""
     if o.status != "refused" or site is None:
         return o
-    inner = [a.outcome.line for a in accepted if a.site is not None and _encloses(site, a.site)]
+    inner = [a.outcome.line for a in accepted if a.site is not None and pipeline.inside(a.site, site)]
     if not inner:
         return o
     note = (f"the directive at line {inner[0]} inside this nest is carried out in this run, and looptile does not "
             "analyse the loops it generates, so this one stays refused; to transform both, give one directive on "
             "this nest that names their loops")
     return replace(o, details=o.details + (note,), rendered=(o.rendered or "") + "\n  " + note)
-
-
-def _encloses(outer: LoopSite, s: LoopSite) -> bool:
-    while s.parent is not None:
-        s = s.parent
-        if s is outer:
-            return True
-    return False
 
 
 # ---------------------------------------------------------------- many files

@@ -70,7 +70,7 @@ def select(tu: TranslationUnit, sel: str) -> LoopSite:
             raise UsageError(f"no for loop starts on line {line}; run 'looptile analyze {path}' to list the nests",
                              path=path, line=line if 1 <= line <= len(tu.source.line_starts) else None)
         first = sites[0]
-        siblings = [s for s in sites[1:] if not _inside(s, first)]
+        siblings = [s for s in sites[1:] if not inside(s, first)]
         if siblings:
             cols = ", ".join(f"{path}:{line}:{tu.source.line_col(tu.tokens[s.token_index].start)[1]}"
                              for s in [first] + siblings if s.token_index is not None)
@@ -90,7 +90,8 @@ def select(tu: TranslationUnit, sel: str) -> LoopSite:
     return top[idx - 1]
 
 
-def _inside(s: LoopSite, outer: LoopSite) -> bool:
+def inside(s: LoopSite, outer: LoopSite) -> bool:
+    """Is loop ``s`` nested (at any depth) inside loop ``outer``?"""
     while s.parent is not None:
         s = s.parent
         if s is outer:
