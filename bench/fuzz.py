@@ -55,6 +55,10 @@ def _one(index: int) -> fuzzgen.Result:
     try:
         try:
             case = fuzzgen.generate(seed, index, _OPTS["kind"])
+            if _OPTS.get("flat"):
+                case = fuzzgen.flattened(case)
+                if case is None:
+                    return fuzzgen.Result(index, "skipped", False, "", detail="no two-dimensional array to flatten")
         except Exception as exc:  # noqa: BLE001 - a generator bug, reported as such
             return fuzzgen.Result(index, "generator", False, "", detail=f"generate() failed: {exc!r}")
         runner = fuzzgen.run_looptile_subprocess if _OPTS["subprocess"] else fuzzgen.run_looptile_inprocess
@@ -83,6 +87,8 @@ def main(argv: list[str] | None = None) -> int:
                     help="stop starting new cases after this many seconds (the report says how many ran)")
     ap.add_argument("--keep", default=None, help="directory for failing cases (default: a new temp dir)")
     ap.add_argument("--subprocess", action="store_true", help="run looptile as a command, not in-process")
+    ap.add_argument("--flat", action="store_true",
+                    help="flatten the two-dimensional arrays: A[(x)*ld + (y)] with a run-time row length")
     ap.add_argument("--kind", choices=fuzzgen.KINDS, default="tile",
                     help="the requests: tile (default), jam (jam and unroll), or all (a mix); the nests are the same")
     args = ap.parse_args(argv)
@@ -92,7 +98,8 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     keep = args.keep or tempfile.mkdtemp(prefix=f"looptile-fuzz-seed{args.seed}-")
     tmp = tempfile.mkdtemp(prefix="looptile-fuzz-work-")
-    opts = {"seed": args.seed, "keep": keep, "tmp": tmp, "subprocess": args.subprocess, "kind": args.kind}
+    opts = {"seed": args.seed, "keep": keep, "tmp": tmp, "subprocess": args.subprocess, "kind": args.kind,
+            "flat": args.flat}
     results: list[fuzzgen.Result] = []
     t0 = time.perf_counter()
     stopped = False

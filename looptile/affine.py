@@ -51,6 +51,9 @@ class Ctx:
     inner: list[Loop] = field(default_factory=list)
     outer_declared: list[str] = field(default_factory=list)
     loop_types: dict[str, CType] = field(default_factory=dict)
+    in_row: list[Obligation] = field(default_factory=list)  # flattened subscripts stay in their rows
+    # array key -> (row lengths, (line, col), subscript text) of each access through one subscript
+    shapes: dict[str, list[tuple[tuple[str, ...], tuple[int, int], str]]] = field(default_factory=dict)
 
     def refuse(self, what: str, node: c_ast.Node | None = None, offset: int | None = None) -> Refusal:
         src = self.tu.source
@@ -149,6 +152,8 @@ def int_affine(ctx: Ctx, node: c_ast.Node) -> tuple[Affine, CType, list[Affine]]
             raise NotAffine(f"the constant {node.value} is not an integer", node) from exc
     if isinstance(node, c_ast.ID):
         return _id_affine(ctx, node)
+    if isinstance(node, c_ast.StructRef):
+        return _field_affine(ctx, node)
     if isinstance(node, c_ast.UnaryOp) and node.op in ("-", "+"):
         a, t, obl = int_affine(ctx, node.expr)
         if node.op == "-" and t.is_unsigned and not a.is_constant():
@@ -230,6 +235,62 @@ def _id_affine(ctx: Ctx, node: c_ast.ID) -> tuple[Affine, CType, list[Affine]]:
         ctx.params.setdefault(name, Param(name, name, sym.ctype, kind))
         return Affine.symbol(name), sym.ctype, []
     raise NotAffine(f"'{name}' is not an integer variable", node)
+
+
+def field_path(ctx: Ctx, node: c_ast.StructRef) -> tuple[str, CType]:
+    """``g->u``, ``grid.n``, ``g->sub.v``: a member reached from a named variable, its canonical
+    spelling (the model's name for it) and its type. Anything else is NotAffine with the reason."""
+    chain: list[tuple[str, str]] = []
+    base: c_ast.Node = node
+    while isinstance(base, c_ast.StructRef):
+        chain.insert(0, (base.type, base.field.name))
+        base = base.name
+    if not isinstance(base, c_ast.ID):
+        raise NotAffine("the member is reached through an expression, not from a named variable", node)
+    name = base.name
+    if declared_in_nest(ctx, name) or name in ctx.iterators:
+        raise NotAffine(f"'{name}' is a variable of the nest itself", node)
+    sym = ctx.scope.get(name)
+    if sym is None or sym.kind not in ("param", "local", "global"):
+        raise NotAffine(f"'{name}' is not a variable the analysis knows", node)
+    t, text = sym.ctype, name
+    for op, member in chain:
+        if op == "->":
+            if t.kind != "pointer" or t.elem is None or t.elem.kind != "struct":
+                raise NotAffine(f"'{text}' is not a pointer to a struct", node)
+            t = t.elem
+        elif t.kind != "struct":
+            raise NotAffine(f"'{text}' is not a struct", node)
+        if t.volatile:
+            raise NotAffine(f"'{text}' is volatile", node)
+        found = ctx.types.member(t, member)
+        if found is None:
+            raise NotAffine(f"the type of member '{member}' of '{text}' is not known", node)
+        t, text = found, f"{text}{op}{member}"
+    return text, t
+
+
+def _field_affine(ctx: Ctx, node: c_ast.StructRef) -> tuple[Affine, CType, list[Affine]]:
+    """An integer member such as ``g->nx``: one parameter (its C value) named by its spelling."""
+    text, t = field_path(ctx, node)
+    if not t.is_int:
+        raise NotAffine(f"'{text}' is not an integer member", node)
+    if t.volatile:
+        raise NotAffine(f"'{text}' is volatile", node)
+    ctx.used_as_param.setdefault(text, node)
+    return Affine.symbol(shared_param(ctx, text, t)), t, []
+
+
+def shared_param(ctx: Ctx, text: str, ctype: CType) -> str:
+    """The model name of the opaque parameter spelled ``text`` (one per spelling: a loop-invariant
+    expression has one value wherever the nest spells it)."""
+    key = " ".join(text.split())
+    for p in ctx.params.values():
+        if p.kind == "opaque" and " ".join(p.text.split()) == key:
+            return p.name
+    name = f"${len([p for p in ctx.params.values() if p.kind == 'opaque'])}"
+    ctx.params[name] = Param(name, text, ctype, "opaque")
+    return name
 
 
 def outer_iterators(ctx: Ctx) -> set[str]:
@@ -367,12 +428,14 @@ def opaque_param(ctx: Ctx, node: c_ast.Node, text: str, why: NotAffine | None,
     if names & set(ctx.iterators) or _has_call_or_write(node):
         reason = why.reason if why else "its C value can wrap around"
         raise ctx.refuse(f"the loop bound '{text}' is outside the model; {reason}", why.node if why else node)
-    for n in names:
+    local = sorted(n for n in names if declared_in_nest(ctx, n))
+    if local:
+        raise ctx.refuse(f"the loop bound '{text}' is outside the model; it uses '{local[0]}', a variable declared "
+                         "inside the nest, whose value the analysis does not follow", node)
+    for n in names | _fields_in(ctx, node):
         ctx.used_as_param.setdefault(n, node)
-    key = f"${len([p for p in ctx.params.values() if p.kind == 'opaque'])}"
     ctype = t or expr_type(ctx, node)
-    ctx.params[key] = Param(key, text, ctype, "opaque")
-    return Affine.symbol(key), ctype, []
+    return Affine.symbol(shared_param(ctx, text, ctype)), ctype, []
 
 
 def expr_type(ctx: Ctx, node: c_ast.Node) -> CType:
@@ -390,6 +453,22 @@ def _ids_in(node: c_ast.Node) -> set[str]:
             out.add(n.name)
 
         def visit_StructRef(self, n):
+            self.visit(n.name)
+
+    V().visit(node)
+    return out
+
+
+def _fields_in(ctx: Ctx, node: c_ast.Node) -> set[str]:
+    """Spellings of the members (``g->len``) an expression reads, for the checks against writes."""
+    out: set[str] = set()
+
+    class V(c_ast.NodeVisitor):
+        def visit_StructRef(self, n):
+            try:
+                out.add(field_path(ctx, n)[0])
+            except NotAffine:
+                pass
             self.visit(n.name)
 
     V().visit(node)

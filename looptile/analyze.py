@@ -3,8 +3,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-from . import extract
-from .deps import NestAnalysis
+from . import ctest, extract
+from .deps import BoundsNotAffine, NestAnalysis
 from .errors import LooptileError
 from .frontend import LoopSite, TranslationUnit
 from .model import Nest
@@ -91,12 +91,18 @@ def report(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] = fr
         line, col = src.line_col(tu.tokens[site.token_index].start)
     base = dict(selectors=_selectors(site), function=site.function, line=line, column=col)
     try:
-        nest = extract.build_nest(tu, site, assume_pure)
+        nest = extract.build_nest(tu, site, assume_pure, keep_pragmas=True)  # placed (or refused) per request
         a = NestAnalysis(nest, assumptions)
         failing = a.failing_obligations()
         if failing:
             o = failing[0]
             reason = f"{src.path}:{o.line}:{o.col}: refused: {o.what} can wrap around in unsigned arithmetic"
+            return NestReport(**base, depth=len(nest.perfect), iterators=nest.iterators, loops=_loop_json(nest),
+                              perfect=not nest.inner and len(nest.statements) <= 1, analysable=False, reason=reason)
+        if a.in_row_never:
+            o = a.in_row_failing[0]
+            reason = (f"{src.path}:{o.line}:{o.col}: refused: {o.what.replace(' stays in ', ' leaves ')} whenever "
+                      "the nest runs")
             return NestReport(**base, depth=len(nest.perfect), iterators=nest.iterators, loops=_loop_json(nest),
                               perfect=not nest.inner and len(nest.statements) <= 1, analysable=False, reason=reason)
         deps = tuple({"kind": d.kind, "array": d.array, "source": d.source, "sink": d.sink,
@@ -106,7 +112,7 @@ def report(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] = fr
         return NestReport(**base, depth=len(nest.perfect), iterators=nest.iterators, loops=_loop_json(nest),
                           perfect=perfect, analysable=True, dependences=deps,
                           permutable_bands=_maximal_bands(a, nest.iterators), statements=len(nest.statements),
-                          assumptions=_assumptions(nest))
+                          assumptions=_assumptions(nest) + _in_row(nest, a))
     except LooptileError as exc:
         depth, node = 0, site.node
         while node is not None:
@@ -114,6 +120,22 @@ def report(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] = fr
             node = extract.single_for(node.stmt)
         return NestReport(**base, depth=depth, iterators=(), loops=(), perfect=False, analysable=False,
                           reason=exc.headline())
+
+
+def _in_row(nest: Nest, a: NestAnalysis) -> tuple[str, ...]:
+    """What the dependences above assume about flattened subscripts (A[i*ld + j])."""
+    flat = [x for x in nest.arrays if x.rows]
+    if not flat:
+        return ()
+    shapes = ", ".join(f"{x.name} as rows of {' x '.join(x.rows)}" for x in flat)
+    if not a.in_row_failing:
+        return (f"reads {shapes}; each flattened subscript stays in its row (proven)",)
+    try:
+        test = ctest.condition(a.in_row_conditions(), {p.name: p for p in nest.params})
+    except BoundsNotAffine:
+        test = None
+    when = f"when {test} (tile tests it at run time)" if test else "(not proven; tile needs --assume-in-row)"
+    return (f"reads {shapes}; each flattened subscript stays in its row {when}",)
 
 
 def _assumptions(nest: Nest) -> tuple[str, ...]:
@@ -143,4 +165,6 @@ def text_table(path: str, reports: list[NestReport]) -> str:
         lines += ["    " + n for n in notes]
     if any(r.assumptions for r in reports):
         lines.append("  the analysis assumes that distinct arrays do not overlap")
+    for r in reports:
+        lines += [f"  {r.selectors[0]}: {a}" for a in r.assumptions if "flattened" in a]
     return "\n".join(lines)

@@ -3,8 +3,18 @@ from __future__ import annotations
 
 from pycparser import c_ast
 
-from .affine import AboveMax, Ctx, NotAffine, column_on_line, declared_in_nest, int_affine, outer_iterators
+from .affine import (
+    AboveMax,
+    Ctx,
+    NotAffine,
+    column_on_line,
+    declared_in_nest,
+    field_path,
+    int_affine,
+    outer_iterators,
+)
 from .ctype import CType
+from .flatten import delinearise, polynomial
 from .headers import extract_loop
 from .model import Access, Affine, ArrayInfo, Condition, Obligation, Statement
 
@@ -27,6 +37,9 @@ class BodyWalker:
         self.ctx = ctx
         self.accesses: list[Access] = []
         self.guards: list[Condition | None] = []  # conditions of the enclosing ifs (None: not affine)
+        # Called with a pragma inside the nest: refuses it or accepts it in place (pragmas.py);
+        # None: every pragma inside the nest is refused.
+        self.pragma_check = None
 
     def affine_condition(self, node: c_ast.Node) -> Condition | None:
         """A condition built from affine comparisons with ``&&``, ``||`` and ``!``; None when it
@@ -82,6 +95,8 @@ class BodyWalker:
             self.leaf(node, path, node)
         elif isinstance(node, c_ast.EmptyStatement):
             pass
+        elif isinstance(node, c_ast.Pragma) and self.pragma_check is not None:
+            self.pragma_check(node)
         elif isinstance(node, c_ast.Pragma):
             raise ctx.refuse(f"'#pragma {node.string}' inside the nest would be detached from its place by the "
                              "rewrite; remove it or select a nest without it", node)
@@ -186,12 +201,10 @@ class BodyWalker:
                 self.expr(e)
         elif isinstance(node, c_ast.FuncCall):
             self.call(node)
-        elif isinstance(node, (c_ast.ID, c_ast.ArrayRef)):
+        elif isinstance(node, (c_ast.ID, c_ast.ArrayRef, c_ast.StructRef)):
             self.lvalue(node, write=False)
         elif isinstance(node, c_ast.Constant):
             pass
-        elif isinstance(node, c_ast.StructRef):
-            raise ctx.refuse("struct member access inside the nest is outside the model", node)
         else:
             raise ctx.refuse(f"{type(node).__name__} inside the nest is outside the model", node)
 
@@ -216,30 +229,39 @@ class BodyWalker:
         while isinstance(base, c_ast.ArrayRef):
             subs.insert(0, base.subscript)
             base = base.name
-        if not isinstance(base, c_ast.ID):
-            if isinstance(base, c_ast.StructRef):
-                raise ctx.refuse("struct member access inside the nest is outside the model", base)
+        member: tuple[str, CType] | None = None
+        if isinstance(base, c_ast.StructRef):
+            try:
+                member = field_path(ctx, base)
+            except NotAffine as exc:
+                raise ctx.refuse(f"this struct member access is outside the model; {exc.reason}", base) from None
+        elif not isinstance(base, c_ast.ID):
             raise ctx.refuse("an element whose base is not a named array is outside the model", node)
-        name = base.name
+        name = member[0] if member else base.name
         for s in subs:
             self.expr(s)
-        local = declared_in_nest(ctx, name)
+        local = member is None and declared_in_nest(ctx, name)
         if name in ctx.iterators and not subs and not local:
             if write:
                 raise ctx.refuse(f"the body writes the iterator '{name}'", node)
             return
         if name in outer_iterators(ctx) and not subs and not write and not local:
             return
-        key, info = self.array_of(name, base, len(subs))
-        affs = []
+        key, info = self.array_of(name, base, len(subs), member[1] if member else None)
+        affs: list[Affine] = []
         for s in subs:
+            line = s.coord.line if s.coord else ctx.site.line
+            col = column_on_line(ctx.tu, line, node) or 1
             try:
                 a, t, obl = int_affine(ctx, s)
             except NotAffine as exc:
+                if len(subs) == 1 and not info.local:
+                    affs.extend(self.flattened(name, key, s, exc, (line, col)))
+                    continue
                 raise ctx.refuse(f"a subscript of '{name}' is not an affine function of the loop iterators and "
                                  f"parameters; {exc.reason}", exc.node or s) from None
-            line = s.coord.line if s.coord else ctx.site.line
-            col = column_on_line(ctx.tu, line, node) or 1
+            if len(subs) == 1 and not info.local:
+                ctx.shapes.setdefault(key, []).append(((), (line, col), spelled_subscript(ctx, s, (line, col))))
             for o in obl:
                 if not isinstance(o, AboveMax):
                     ctx.obligations.append(Obligation(o, tuple(ctx.iterators), line, col,
@@ -249,21 +271,59 @@ class BodyWalker:
             affs = [Affine.symbol(i) for i in ctx.iterators[: info.ndims - len(affs)]] + affs
         if write and not subs:
             ctx.written.setdefault(name, node)
-        at = (base.coord.line, base.coord.column) if base.coord is not None and base.coord.column else None
+        root = base
+        while isinstance(root, c_ast.StructRef):
+            root = root.name
+        at = (root.coord.line, root.coord.column) if root.coord is not None and root.coord.column else None
         self.accesses.append(Access(key, tuple(affs), write, at))
 
-    def array_of(self, name: str, node: c_ast.Node, nsubs: int) -> tuple[str, ArrayInfo]:
+    def flattened(self, name: str, key: str, sub: c_ast.Node, why: NotAffine,
+                  at: tuple[int, int]) -> list[Affine]:
+        """The subscripts of a flattened access ``A[i*ld + j]`` (see flatten.py), with the in-row
+        obligations ``0 <= j`` and ``j < ld``; a refusal with the reason when it is not one."""
+        ctx = self.ctx
+        try:
+            poly, t = polynomial(ctx, sub)
+            spell = {p.name: p.text for p in ctx.params.values()}
+            indices = {p.name for p in ctx.params.values() if p.kind == "outer-iterator"}
+            flat = delinearise(poly, set(ctx.iterators), lambda x: spell.get(x, x), indices)
+        except NotAffine as exc:
+            reason = why.reason if exc.reason == why.reason else f"{why.reason}, and {exc.reason}"
+            raise ctx.refuse(f"a subscript of '{name}' is not an affine function of the loop iterators and "
+                             f"parameters; {reason}", sub) from None
+        if t.is_unsigned and t.bits < 64:
+            kind = t.spelling or "a narrow unsigned type"
+            raise ctx.refuse(f"the flattened subscript of '{name}' is computed in {kind}, where a product that "
+                             "wraps around can be a valid index again; compute it in size_t or a signed type", sub)
+        text = spelled_subscript(ctx, sub, at)
+        loops = tuple(ctx.iterators)
+        for k, row in enumerate(flat.rows):
+            q = flat.subscripts[k + 1]
+            length = next(p.text for p in ctx.params.values() if p.name == row)
+            what = f"the subscript {name}[{text}] stays in its row of {length} elements"
+            ctx.in_row.append(Obligation(q, loops, at[0], at[1], what))
+            ctx.in_row.append(Obligation(Affine.symbol(row) - q - Affine(const=1), loops, at[0], at[1], what))
+        ctx.shapes.setdefault(key, []).append((tuple(flat.rows), at, text))
+        return list(flat.subscripts)
+
+    def array_of(self, name: str, node: c_ast.Node, nsubs: int,
+                 member: CType | None = None) -> tuple[str, ArrayInfo]:
+        """The array (or scalar) ``name`` is: a local of the nest, a variable, or a struct member
+        (``member`` is its type; the spelling ``g->u`` is its name)."""
         ctx = self.ctx
         for scope in reversed(ctx.locals_):
-            if name in scope:
+            if member is None and name in scope:
                 info = ctx.arrays[scope[name]]
-                if info.ndims - (len(ctx.iterators) if False else 0) < nsubs:
+                if info.ndims < nsubs:
                     raise ctx.refuse(f"'{name}' has fewer dimensions than subscripts", node)
                 return info.key, info
-        sym = ctx.scope.get(name)
-        if sym is None or sym.kind not in ("param", "local", "global"):
-            raise ctx.refuse(f"'{name}' is not a variable the analysis knows", node)
-        t = sym.ctype
+        if member is not None:
+            t = member
+        else:
+            sym = ctx.scope.get(name)
+            if sym is None or sym.kind not in ("param", "local", "global"):
+                raise ctx.refuse(f"'{name}' is not a variable the analysis knows", node)
+            t = sym.ctype
         if t.volatile or t.scalar_elem().volatile:
             raise ctx.refuse(f"'{name}' is volatile; its accesses must not be reordered", node)
         if t.kind in ("int", "float"):
@@ -277,8 +337,31 @@ class BodyWalker:
                              "a partial subscript or a pointer-typed element is outside the model", node)
         if elem.kind not in ("int", "float"):
             raise ctx.refuse(f"the elements of '{name}' are not numbers", node)
-        info = ctx.arrays.setdefault(name, ArrayInfo(name, name, elem, ndims, restrict=t.restrict))
+        # Reached through a pointer: a pointer variable or field, or an array parameter (C adjusts
+        # its type to a pointer); its elements may then be those of another array of the nest.
+        pointer = t.kind == "pointer" or (member is None and t.kind == "array" and sym.kind == "param")
+        info = ctx.arrays.setdefault(name, ArrayInfo(name, name, elem, ndims, restrict=t.restrict,
+                                                     pointer=pointer and ndims > 0))
         return name, info
+
+
+def spelled_subscript(ctx: Ctx, sub: c_ast.Node, at: tuple[int, int] | None = None) -> str:
+    """A subscript as the source spells it, for messages: the text between the brackets after
+    the access at ``at`` (line, column of its first token); as the preprocessed code spells it
+    when that is not found (a macro)."""
+    if at is not None:
+        src = ctx.tu.source
+        start = src.offset(at[0], at[1])
+        toks = ctx.tu.code_between(start, start + 4096)
+        k = next((n for n, t in enumerate(toks[:8]) if t.text == "["), None)
+        if k is not None:
+            depth = 0
+            for t in toks[k:]:
+                depth += {"[": 1, "]": -1}.get(t.text, 0)
+                if depth == 0:
+                    return " ".join(src.text[toks[k].end:t.start].split())
+    from pycparser import c_generator
+    return c_generator.CGenerator().visit(sub)
 
 
 def array_dims(t: CType) -> tuple[int, CType]:

@@ -40,6 +40,9 @@ def frontend_options(f):
                      help="Treat calls to NAME as free of side effects."),
         click.option("--assume", "assumptions", multiple=True, metavar="COND",
                      help="Assert a condition on parameters, e.g. 'n >= 1' (recorded in the guard, not checked)."),
+        click.option("--assume-in-row", "assume_in_row", is_flag=True,
+                     help="Assert that flattened subscripts (A[i*ld + j]) stay in their rows (0 <= j < ld) where "
+                          "looptile cannot prove it; recorded in the guard instead of a run-time test."),
         click.option("--debug", is_flag=True, help="Show tracebacks of internal errors."),
     ]
     for o in reversed(opts):
@@ -155,6 +158,14 @@ def _command_text(path: str, nest: str, sizes: tuple[str, ...], order: str | Non
         parts += ["--jam", kw["jam_spec"]]
     if kw.get("scalarize"):
         parts.append("--scalarize")
+    for name in kw.get("reassociate", ()):
+        parts += ["--reassociate", name]
+    if kw.get("parallel"):
+        parts.append("--parallel")
+    if kw.get("assume_in_row"):
+        parts.append("--assume-in-row")
+    if kw.get("check_overlap"):
+        parts.append("--check-overlap")
     flags = _flags(path, kw) if not kw.get("compile_db") else None
     if kw.get("compile_db"):
         parts += ["--compile-db", kw["compile_db"]]
@@ -178,7 +189,23 @@ def check_options(f):
     return f
 
 
-def _verify_options(kw: dict, tile_sizes: tuple[int, ...]) -> VerifyOptions:
+def reassociate_options(f):
+    """Reductions by consent: accumulations whose additions a rewrite may reorder."""
+    opts = [
+        click.option("--reassociate", "reassociate", multiple=True, metavar="NAME",
+                     help="Allow reordering the additions into NAME (s += e, y[i] += e); for floating point the "
+                          "results may differ in the last bits, for signed integers you assert that no partial "
+                          "sum overflows (repeatable)."),
+        click.option("--tolerance", "tolerance", type=float, default=None, metavar="REL",
+                     help="With --verify/verify and --reassociate: allowed difference of a reassociated value, "
+                          "relative to the sum of the absolute values of its terms (default: by type, see README)."),
+    ]
+    for o in reversed(opts):
+        f = o(f)
+    return f
+
+
+def _verify_options(kw: dict, tile_sizes: tuple[int, ...], reassociated: tuple[str, ...] = ()) -> VerifyOptions:
     sets = []
     for spec in kw["params"]:
         values = {}
@@ -197,7 +224,11 @@ def _verify_options(kw: dict, tile_sizes: tuple[int, ...]) -> VerifyOptions:
         if not eq or not name.strip() or not expr.strip():
             raise UsageError(f"--shape '{item}' is not NAME=EXPRESSION (e.g. A=n*m)")
         shapes[name.strip()] = expr.strip()
-    return VerifyOptions(tuple(sets), shapes, kw["seed"], kw["timeout"], tile_sizes)
+    tol = kw.get("tolerance")
+    if tol is not None and not 0 <= tol < 1:
+        raise UsageError(f"--tolerance {tol} is not a relative bound between 0 and 1 (e.g. 1e-12)")
+    return VerifyOptions(tuple(sets), shapes, kw["seed"], kw["timeout"], tile_sizes, reassociated, tol,
+                         overlap=bool(kw.get("check_overlap")))
 
 
 def _print_report(report) -> None:
@@ -215,6 +246,9 @@ def _print_report(report) -> None:
 @click.option("--scalarize", is_flag=True, help="As for tile.")
 @click.option("--against", metavar="OTHER.c", help="Check a version rewritten by hand against FILE.")
 @click.option("--func", "func", metavar="NAME", help="With --against: the kernel function to compare.")
+@click.option("--check-overlap", "check_overlap", is_flag=True,
+              help="As for tile; also call the kernel with two array arguments overlapping.")
+@reassociate_options
 @check_options
 @frontend_options
 @reporting
@@ -232,16 +266,18 @@ def verify_cmd(file: str, nest: str | None, sizes: tuple[str, ...], order: str |
                 candidate = open(against, "rb").read()
             except OSError as exc:
                 raise InputError(f"cannot read the file; {exc.strerror}", path=against) from exc
-            report = verify(tu, candidate, func, _verify_options(kw, ()), candidate_name="hand-rewritten")
+            report = verify(tu, candidate, func, _verify_options(kw, (), tuple(kw["reassociate"])),
+                            candidate_name="hand-rewritten")
         else:
             req = _tile_request(sizes, order, remainder, jam_spec, scalarize)
             opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), False,
                                         _command_text(file, nest, sizes, order, remainder or "split",
                                                       dict(kw, jam_spec=jam_spec, scalarize=scalarize)),
-                                        split_fallback=remainder is None)
+                                        split_fallback=remainder is None, reassociate=tuple(kw["reassociate"]),
+                                        assume_in_row=kw["assume_in_row"], check_overlap=kw["check_overlap"])
             outcome = pipeline.tile(tu, nest, req, opts)
             report = verify(tu, outcome.new, outcome.nest.function,
-                            _verify_options(kw, _all_sizes(req)))
+                            _verify_options(kw, _all_sizes(req), outcome.reassociated))
     except LooptileError as exc:
         if exc.path is None:
             exc.path = file
@@ -268,12 +304,19 @@ def verify_cmd(file: str, nest: str | None, sizes: tuple[str, ...], order: str |
               help="Then unroll-and-jam loops inside the tiles, e.g. i=4,j=4 (register tiles).")
 @click.option("--scalarize", is_flag=True,
               help="With --jam: keep elements the innermost loop keeps touching in locals.")
+@click.option("--check-overlap", "check_overlap", is_flag=True,
+              help="Test at run time that the arrays reached through pointers without restrict do not overlap; "
+                   "the original nest runs when they do.")
+@click.option("--parallel", is_flag=True,
+              help="Mark the outermost loop outside the tiles that provably carries no dependence with "
+                   "'#pragma omp parallel for'.")
+@reassociate_options
 @check_options
 @frontend_options
 @reporting
 def tile(file: str, nest: str, sizes: tuple[str, ...], order: str | None, remainder: str, as_diff: bool,
          output: str | None, in_place: bool, force: bool, check: bool, jam_spec: str | None, scalarize: bool,
-         **kw) -> None:
+         parallel: bool, check_overlap: bool, **kw) -> None:
     """Strip-mine a band of loops and move the tile loops outward, if the analysis proves it legal."""
     try:
         if sum([as_diff, bool(output), in_place]) > 1:
@@ -281,12 +324,16 @@ def tile(file: str, nest: str, sizes: tuple[str, ...], order: str | None, remain
         req = _tile_request(sizes, order, remainder, jam_spec, scalarize)
         opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), force,
                                     _command_text(file, nest, sizes, order, remainder or "split",
-                                                  dict(kw, jam_spec=jam_spec, scalarize=scalarize)),
-                                    split_fallback=remainder is None)
+                                                  dict(kw, jam_spec=jam_spec, scalarize=scalarize,
+                                                       parallel=parallel, check_overlap=check_overlap)),
+                                    split_fallback=remainder is None, reassociate=tuple(kw["reassociate"]),
+                                    parallel=parallel, assume_in_row=kw["assume_in_row"],
+                                    check_overlap=check_overlap)
         tu = pipeline.load(file, _flags(file, kw))
         outcome = pipeline.tile(tu, nest, req, opts)
         report = verify(tu, outcome.new, outcome.nest.function,
-                        _verify_options(kw, _all_sizes(req))) if check else None
+                        _verify_options(dict(kw, check_overlap=check_overlap), _all_sizes(req),
+                                        outcome.reassociated)) if check else None
     except LooptileError as exc:
         if exc.path is None:  # a usage error about this file's request: say which file
             exc.path = file
@@ -340,6 +387,10 @@ def _copy_command(kind: str, file: str, nest: str, spec: str, kw: dict) -> str:
         ["--full"] if spec == "full" else ["--factors" if kind == "jam" else "--factor", spec])
     if kw.get("scalarize"):
         parts.append("--scalarize")
+    for name in kw.get("reassociate", ()):
+        parts += ["--reassociate", name]
+    if kw.get("assume_in_row"):
+        parts.append("--assume-in-row")
     if kw.get("compile_db"):
         parts += ["--compile-db", kw["compile_db"]]
     else:
@@ -369,7 +420,8 @@ def _copy_job(kind: str, file: str, nest: str, spec: str, as_diff: bool, output:
         if sum([as_diff, bool(output), in_place]) > 1:
             raise UsageError("choose one of --diff, -o OUT and --in-place")
         opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), force,
-                                    _copy_command(kind, file, nest, spec, kw))
+                                    _copy_command(kind, file, nest, spec, kw), reassociate=tuple(kw["reassociate"]),
+                                    assume_in_row=kw["assume_in_row"])
         if kind == "jam":
             factors = _parse_factors(spec)
             sizes = tuple(u for _, u in factors)
@@ -387,7 +439,8 @@ def _copy_job(kind: str, file: str, nest: str, spec: str, as_diff: bool, output:
             outcome = jam_job.unroll_full(tu, nest, opts)
         else:
             outcome = jam_job.unroll(tu, nest, sizes[0], opts)
-        report = verify(tu, outcome.new, outcome.nest.function, _verify_options(kw, sizes)) if check else None
+        report = verify(tu, outcome.new, outcome.nest.function,
+                        _verify_options(kw, sizes, outcome.reassociated)) if check else None
     except LooptileError as exc:
         if exc.path is None:
             exc.path = file
@@ -405,6 +458,7 @@ def _copy_job(kind: str, file: str, nest: str, spec: str, as_diff: bool, output:
               help="Keep elements that the innermost loop keeps touching (C[i][j] over k) in locals, where proven "
                    "safe.")
 @output_options
+@reassociate_options
 @check_options
 @frontend_options
 @reporting
@@ -420,6 +474,7 @@ def jam(file: str, nest: str, factors: str, scalarize: bool, as_diff: bool, outp
 @click.option("--factor", "factor", metavar="N", help="How many copies of the body per iteration.")
 @click.option("--full", is_flag=True, help="Unroll completely (the trip count must be a constant): no loop is left.")
 @output_options
+@reassociate_options
 @check_options
 @frontend_options
 @reporting

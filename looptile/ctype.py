@@ -22,6 +22,7 @@ class CType:
     const: bool = False
     restrict: bool = False
     spelling: str = ""  # the type as written (for declarations of new iterators)
+    tag: str = ""  # structs and unions: the key of their member list in the TypeTable
 
     @property
     def is_int(self) -> bool:
@@ -67,9 +68,42 @@ class TypeTable:
 
     def __init__(self, ast: c_ast.FileAST) -> None:
         self.typedefs: dict[str, c_ast.Node] = {}
+        self.records: dict[str, list[c_ast.Decl]] = {}  # struct/union key -> member declarations
         for ext in ast.ext:
             if isinstance(ext, c_ast.Typedef):
                 self.typedefs[ext.name] = ext.type
+
+        class Records(c_ast.NodeVisitor):
+            def visit_Struct(v, n):  # noqa: N805 - the table is `self`
+                self._record(n)
+                v.generic_visit(n)
+
+            def visit_Union(v, n):  # noqa: N805
+                self._record(n)
+                v.generic_visit(n)
+
+        Records().visit(ast)
+
+    @staticmethod
+    def _key(node: c_ast.Node) -> str:
+        kind = "union" if isinstance(node, c_ast.Union) else "struct"
+        return f"{kind} {node.name}" if node.name else f"{kind} @{id(node)}"
+
+    def _record(self, node: c_ast.Node) -> None:
+        if node.decls is not None:
+            self.records[self._key(node)] = list(node.decls)
+
+    def member(self, t: CType, name: str) -> CType | None:
+        """The type of member ``name`` of the struct or union type ``t`` (None if unknown)."""
+        for d in self.records.get(t.tag, []):
+            if d.name == name:
+                return self.of(d.type)
+            if d.name is None and isinstance(d.type, c_ast.TypeDecl):  # anonymous struct/union member
+                inner = self.of(d.type)
+                found = self.member(inner, name) if inner.kind == "struct" else None
+                if found is not None:
+                    return found
+        return None
 
     def of(self, node: c_ast.Node, spelling: str | None = None) -> CType:
         """CType of a declarator (Decl.type, Typename.type)."""
@@ -105,7 +139,9 @@ class TypeTable:
             it = _int_type(names, text)
             return it if it is not None else CType("other", spelling=text)
         if isinstance(node, (c_ast.Struct, c_ast.Union)):
-            return CType("struct", spelling="struct")
+            if node.decls is not None:
+                self._record(node)
+            return CType("struct", spelling="struct", tag=self._key(node))
         if isinstance(node, c_ast.Enum):
             return CType("int", True, 32, 3, spelling="int")
         return CType("other")
@@ -113,11 +149,11 @@ class TypeTable:
 
 def _with_quals(t: CType, quals: list[str]) -> CType:
     return CType(t.kind, t.signed, t.bits, t.rank, t.elem, t.ndims, t.volatile or "volatile" in quals,
-                 t.const or "const" in quals, t.restrict, t.spelling)
+                 t.const or "const" in quals, t.restrict, t.spelling, t.tag)
 
 
 def _respell(t: CType, spelling: str) -> CType:
-    return CType(t.kind, t.signed, t.bits, t.rank, t.elem, t.ndims, t.volatile, t.const, t.restrict, spelling)
+    return CType(t.kind, t.signed, t.bits, t.rank, t.elem, t.ndims, t.volatile, t.const, t.restrict, spelling, t.tag)
 
 
 def promote(t: CType) -> CType:

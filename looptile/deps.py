@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import islpy as isl
 
 from .errors import UsageError
-from .model import Access, Affine, Condition, Loop, Nest, Obligation, ScheduleDim, Statement
+from .model import Access, Affine, Condition, Loop, Nest, Obligation, Reassociation, ScheduleDim, Statement
 
 _ctx = isl.DEFAULT_CONTEXT
 
@@ -55,6 +55,7 @@ class Witness:
 class Legality:
     legal: bool
     witness: Witness | None = None
+    reordered: tuple[str, ...] = ()  # C names of allowed accumulations whose updates the schedule reorders
 
 
 def _isl_name(sym: str) -> str:
@@ -76,8 +77,16 @@ def _tuple_name(key: str) -> str:
 class NestAnalysis:
     """isl view of one nest: domains, accesses, original schedule, dependences."""
 
-    def __init__(self, nest: Nest, assumptions: tuple[str, ...] = ()) -> None:
+    def __init__(self, nest: Nest, assumptions: tuple[str, ...] = (), assume_in_row: bool = False,
+                 reassociation: Reassociation | None = None, extents_only: bool = False) -> None:
+        """``extents_only``: a view for the elements the accesses touch (``access_extent``), for
+        every parameter value: flattened subscripts are then not restricted to stay in their rows
+        (their flat index is the same either way), and dependences must not be asked for."""
         self.nest = nest
+        # Accumulations whose updates may run in a new order: only check() drops the dependences
+        # between their updates (every other user of the dependences, e.g. a parallel loop, sees them).
+        self.reassociation = reassociation or Reassociation()
+        self._split: dict[tuple[str, str], tuple[isl.UnionMap, isl.UnionMap | None]] = {}
         self.loops: dict[str, Loop] = {lp.iterator: lp for lp in nest.perfect + nest.inner}
         self.params = [_isl_name(p.name) for p in nest.params]
         self.param_text = {_isl_name(p.name): p.text for p in nest.params}
@@ -97,11 +106,82 @@ class NestAnalysis:
             except isl.Error:
                 raise UsageError(f"--assume {' '.join(repr(a) for a in assumptions)} is not a condition on the "
                                  "nest's parameters (write e.g. 'n >= 1' or 'n >= m and m >= 0')") from None
+        self.in_row_failing: list[Obligation] = []  # in-row obligations not proven for every size
+        self.in_row_never = False  # ... and they fail whenever the accesses run
+        self.in_row_check: isl.Set | None = None  # the parameter condition to test at run time
+        self.assume_in_row = assume_in_row
+        if nest.in_row and not extents_only:
+            self._in_row()
         self.tail_len = max((len(s.tail) for s in nest.statements), default=0)
         self.domains = {s.name: self._domain(s) for s in nest.statements}
         self.stmts = {s.name: s for s in nest.statements}
         self.original = self._schedule(None)
         self._deps: list[tuple[str, str, isl.UnionMap]] | None = None
+
+    def _in_row(self) -> None:
+        """Flattened subscripts: where their in-row obligations fail, the multi-dimensional reading
+        is not exact. The analysis is then valid only for the parameters where they hold
+        (``safe``), which become part of the context: proven when that is every parameter value
+        for which the accesses run, else ``in_row_check`` (simplified against "the accesses
+        run": outside that, nothing runs and any test result is harmless) is tested at run time,
+        or asserted by the user (``assume_in_row``)."""
+        bad = runs = None
+        for o in self.nest.in_row:
+            dom = self.chain_set("X", o.loops)
+            v = dom.intersect(self.chain_set("X", o.loops, f"{self._r(o.expr)} < 0")).params()
+            d = dom.params()
+            runs = d if runs is None else runs.union(d)
+            if not v.is_empty():
+                self.in_row_failing.append(o)
+                bad = v if bad is None else bad.union(v)
+        if bad is None:
+            return
+        assert runs is not None
+        ctx = self.context.align_params(bad.get_space())
+        bad, runs = bad.align_params(ctx.get_space()), runs.align_params(ctx.get_space())
+        safe = ctx.subtract(bad)
+        if safe.intersect(runs).is_empty():
+            self.in_row_never = True
+        check = safe.gist(runs.intersect(ctx)).coalesce()
+        if not _plain_condition(check):
+            # Steps make the exact test need divisions (a parity), and the type ranges of the
+            # parameters can give it huge coefficients: test a sufficient condition instead,
+            # the polyhedral hull (a superset) of the violations computed over all integers,
+            # within the hull of "runs". The rewrite then runs for fewer sizes, and it stays true
+            # that wherever the test holds the parameters are in ``safe``, the analysis' context.
+            kept = self.context
+            self.context = isl.Set.universe(ctx.get_space())
+            try:
+                bad = runs = None
+                for o in self.nest.in_row:
+                    dom = self.chain_set("X", o.loops)
+                    v = dom.intersect(self.chain_set("X", o.loops, f"{self._r(o.expr)} < 0")).params()
+                    runs = dom.params() if runs is None else runs.union(dom.params())
+                    bad = v if bad is None else bad.union(v)
+            finally:
+                self.context = kept
+            assert bad is not None and runs is not None
+            hull_runs = isl.Set.from_basic_set(runs.polyhedral_hull()).align_params(ctx.get_space())
+            bad = isl.Set.from_basic_set(bad.polyhedral_hull()).align_params(ctx.get_space()).intersect(hull_runs)
+            safe = ctx.subtract(bad)
+            check = isl.Set.universe(ctx.get_space()).subtract(bad).gist(hull_runs).coalesce()
+        self.in_row_check = check
+        self.context = safe
+
+    def in_row_conditions(self) -> list[list[tuple[Affine, bool]]]:
+        """The run-time test of the in-row obligations: a disjunction (outer list) of
+        conjunctions of ``a >= 0`` (False) / ``a == 0`` (True); [] when none is needed.
+        Raises BoundsNotAffine when a part is not plain affine (a division)."""
+        if self.in_row_check is None:
+            return []
+        bsets: list[isl.BasicSet] = []
+        self.in_row_check.foreach_basic_set(bsets.append)
+        out = []
+        for b in bsets:
+            if b.dim(isl.dim_type.div):
+                raise BoundsNotAffine("the in-row condition needs a division")
+            out.append(_constraint_affines(b))
+        return out
 
     # -- construction helpers
     def _prefix(self) -> str:
@@ -313,11 +393,52 @@ class NestAnalysis:
         """Is the schedule ``dims`` (then each statement's tail) legal? With a witness if not."""
         theta = self._schedule(dims)
         ge = theta.lex_ge_union_map(theta)
+        reordered = set()
         for kind, key, rel in self.dependence_relations():
+            rel, dropped = self._without_updates(kind, key, rel)
             v = rel.intersect(ge)
             if not v.is_empty():
                 return Legality(False, self._witness(kind, key, v))
-        return Legality(True)
+            if dropped is not None and not dropped.intersect(ge).is_empty():
+                reordered.add(self.nest.array(key).name)
+        return Legality(True, reordered=tuple(sorted(reordered)))
+
+    def _without_updates(self, kind: str, key: str,
+                         rel: isl.UnionMap) -> tuple[isl.UnionMap, isl.UnionMap | None]:
+        """``rel`` without the pairs whose both ends are allowed updates of the accumulation into
+        ``key``, and those pairs (None when there are none): a schedule that violates only them
+        reorders the sum, which the user allowed (or which is exact: unsigned)."""
+        allowed = self.reassociation.allowed_statements(key)
+        if not allowed:
+            return rel, None
+        if (kind, key) not in self._split:
+            kept, dropped = isl.UnionMap("{ }", context=_ctx), None
+            for m in _maps(rel):
+                one = isl.UnionMap.from_map(m)
+                if {m.get_tuple_name(isl.dim_type.in_), m.get_tuple_name(isl.dim_type.out)} <= allowed:
+                    dropped = one if dropped is None else dropped.union(one)
+                else:
+                    kept = kept.union(one)
+            self._split[(kind, key)] = (kept, dropped)
+        return self._split[(kind, key)]
+
+    def carried(self, dims: list[ScheduleDim], k: int) -> tuple[str, Witness] | None:
+        """Does dimension ``k`` of the (legal) schedule ``dims`` carry a dependence: a pair of
+        dependent instances whose values agree on dimensions 0..k-1 and differ at k? None when
+        it carries none (the loop at ``k`` may run its iterations in parallel, the loops outside
+        it running in order); else (the array's C name, a witness pair)."""
+        theta = self._schedule(dims)
+        m = len(dims) + self.tail_len
+        t = ", ".join(f"t{j}" for j in range(m))
+        u = ", ".join(f"u{j}" for j in range(m))
+        cons = [f"t{j} = u{j}" for j in range(k)] + [f"(t{k} < u{k} or t{k} > u{k})"]
+        same = isl.UnionMap(self._prefix() + f"{{ [{t}] -> [{u}] : {' and '.join(cons)} }}", context=_ctx)
+        pairs = theta.apply_range(same).apply_range(theta.reverse())
+        for kind, key, rel in self.dependence_relations():
+            v = rel.intersect(pairs)
+            if not v.is_empty():
+                return self.nest.array(key).name, self._witness(kind, key, v)
+        return None
 
     def _witness(self, kind: str, key: str, v: isl.UnionMap) -> Witness:
         m = _maps(v)[0]
@@ -420,6 +541,19 @@ def _pick_point(s: isl.Set) -> isl.Point | None:
         if not point.is_void() and isl.Set.from_point(point).is_subset(s):
             return point
     return None
+
+
+def _plain_condition(s: isl.Set) -> bool:
+    """No divisions and small coefficients: a test worth printing."""
+    ok: list[bool] = []
+
+    def one(b: isl.BasicSet) -> None:
+        if b.dim(isl.dim_type.div):
+            ok.append(False)
+            return
+        ok.extend(abs(c) <= 1024 for a, _ in _constraint_affines(b) for _, c in a.terms)
+    s.foreach_basic_set(one)
+    return all(ok)
 
 
 def _maps(um: isl.UnionMap) -> list[isl.Map]:
@@ -674,6 +808,26 @@ def overflow_guard(analysis: NestAnalysis, tile_of: dict[str, str],
     return out
 
 
+def touched_box(analysis: NestAnalysis, array: str) -> list[tuple[Affine, Affine]]:
+    """Per dimension of ``array``, one affine lower and one affine upper bound (in the
+    parameters) of the indices the nest touches; BoundsNotAffine when isl's bounds are not single
+    affine expressions (several pieces, divisions)."""
+    um = None
+    for write in (False, True):
+        m = analysis._union(write, array)
+        if m is not None:
+            um = m if um is None else um.union(m)
+    if um is None:
+        raise BoundsNotAffine("the nest does not touch the array")
+    sets: list[isl.Set] = []
+    um.range().foreach_set(sets.append)
+    s = sets[0].intersect_params(_lift(analysis.context, sets[0]))
+    out = []
+    for k in range(s.dim(isl.dim_type.set)):
+        out.append((_single_affine(s.dim_min(k)), _single_affine(s.dim_max(k))))
+    return out
+
+
 def access_extent(analysis: NestAnalysis, array: str, values: dict[str, int]) -> list[tuple[int, int]] | None:
     """Smallest and largest index of each dimension of ``array`` that the nest touches when the
     parameters have ``values`` (C names; parameters without a value range over all their values).
@@ -697,6 +851,16 @@ def access_extent(analysis: NestAnalysis, array: str, values: dict[str, int]) ->
     s = s.project_out(isl.dim_type.param, 0, s.dim(isl.dim_type.param))
     if s.is_empty():
         return None
+    info = analysis.nest.array(array)
+    if info.rows:  # a flattened array: the range of the flat index, as the C code computes it
+        if any(r not in values for r in info.rows):
+            raise BoundsNotAffine("the extent of a flattened array needs its row lengths")
+        strides = [1]
+        for r in reversed(info.rows):
+            strides.insert(0, strides[0] * values[r])
+        dims = [f"x{k}" for k in range(len(strides))]
+        flat = " + ".join(f"{st}*{x}" for st, x in zip(strides, dims))
+        s = s.reset_tuple_id().apply(isl.Map(f"{{ [{', '.join(dims)}] -> [{flat}] }}", context=_ctx))
     out = []
     for k in range(s.dim(isl.dim_type.set)):
         lo, hi = s.dim_min(k), s.dim_max(k)

@@ -71,6 +71,25 @@ class Line:
     text: str
 
 
+class Marked(str):
+    """A loop header with the pragma line that goes right before it (placed by pragmas.py)."""
+
+    pragma: str = ""
+
+
+def marked(header: str, pragma: str) -> str:
+    if not pragma:
+        return header
+    out = Marked(header)
+    out.pragma = pragma
+    return out
+
+
+def pragma_lines(indent: str, header: str) -> list[Line]:
+    pragma = getattr(header, "pragma", "")
+    return [Line(indent, pragma)] if pragma else []
+
+
 @dataclass(frozen=True)
 class EmitFacts:
     """What the analysis established for emission (plain data from deps.py)."""
@@ -172,9 +191,10 @@ def full_form(lp: Loop, size: int) -> int:
 
 
 class NestEmitter:
-    def __init__(self, src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, jam=None) -> None:
+    def __init__(self, src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, jam=None, omp=None) -> None:
         self.src, self.nest, self.plan, self.facts = src, nest, plan, facts
         self.jam = jam  # an emit_jam.JamContext when the plan unrolls and jams inside the tiles
+        self.omp = omp  # a pragmas.Placement: which loops get which pragma lines
         self.unit = src.indent_unit
         self.base = src.indent_of(nest.start)
         inner = nest.perfect[-1]
@@ -232,6 +252,55 @@ class NestEmitter:
         return render("tile_loop.c.j2", decl=self._decl(lp, True), name=s.name, start=lp.start.text, op=lp.op,
                       limit=self._limit(lp), dist=self._dist(lp, s.name), more=">=" if lp.inclusive else ">",
                       span=span, sign="+" if lp.direction > 0 else "-", past=self._past(lp))
+
+    def _marked(self, k: int, s: Slot, header: str) -> str:
+        """Slot ``k``'s header with the pragma the placement gives it: a worksharing loop's tile
+        loop in OpenMP's canonical form (OpenMP 5.2, 4.4.1 "Canonical Loop Nest Form", from
+        memory: incr-expr ``var += incr`` with a loop-invariant incr, test-expr ``var op b``; the
+        conditional increment of our tile loops is not one of them)."""
+        om = self.omp
+        if om is None:
+            return header
+        if om.parallel_at(k):
+            if s.kind == "tile":
+                header = self.omp_tile_header(s)
+            return marked(header, om.parallel_text if k == om.parallel_slot else "")
+        if k == len(self.plan.slots) - 1:
+            return marked(header, om.innermost_text)
+        return header
+
+    def omp_tile_header(self, s: Slot) -> str:
+        """``for (ii = start; ii < limit; ii += T)``: the increment past the last tile is covered by
+        the overflow guard (pragmas.Placement.overflow_terms)."""
+        lp = self.loops[s.iterator]
+        start, op, limit = lp.start.text, lp.op, self._limit(lp)
+        if s.hull is not None:
+            lowers, uppers = s.hull
+            if lp.direction > 0:
+                one = Affine(const=1)
+                start, op = c_affine(lowers[0], self.nest), "<"
+                limit = self._extremum([c_affine(hi + one, self.nest) for hi in uppers], "<")
+            else:
+                start, op = c_affine(uppers[0], self.nest), ">="
+                limit = self._extremum([c_affine(lo, self.nest) for lo in lowers], ">")
+        return render("tile_loop_omp.c.j2", decl=self._decl(lp, True), name=s.name, start=start, op=op,
+                      limit=limit, sign="+" if lp.direction > 0 else "-", span=literal(lp.step * (s.size or 1), lp))
+
+    def omp_clamp_header(self, s: Slot, tile: str) -> str:
+        """The clamped point loop in canonical form, its bound one loop-invariant expression:
+        ``i < (n - ii > T ? ii + T : n)`` (``<=``: ``i <= (n - ii >= T ? ii + (T-1) : n)``); the
+        near end is computed only when it is inside the loop's range."""
+        lp = self.loops[s.iterator]
+        span = lp.step * (s.size or 1)
+        sign = "+" if lp.direction > 0 else "-"
+        near = f"{tile} {sign} {literal(span - 1 if lp.inclusive else span, lp)}"
+        bound = f"({self._dist(lp, tile)} {'>=' if lp.inclusive else '>'} {literal(span, lp)} ? {near} : " \
+                f"{self._limit(lp)})"
+        start = tile
+        if self.hulls.get(s.iterator):
+            own = paren(lp.start.text)
+            start = f"({tile} > {own} ? {tile} : {own})" if lp.direction > 0 else f"({tile} < {own} ? {tile} : {own})"
+        return f"for ({self._decl(lp, False)}{s.name} = {start}; {s.name} {lp.op} {bound}; {self._step_text(lp)})"
 
     def _hull_tile_header(self, s: Slot, lp: Loop, span: int) -> str:
         """Tile loop over the loop's hull, written like a rectangular loop.
@@ -355,6 +424,7 @@ class NestEmitter:
     def loops_and_body(self, headers: list[str], depth: int) -> list[Line]:
         out = []
         for h in headers:
+            out += pragma_lines(self.base + self.unit * depth, h)
             out.append(Line(self.base + self.unit * depth, h))
             depth += 1
         ind = self.base + self.unit * (depth - 1)
@@ -375,17 +445,17 @@ class NestEmitter:
         headers: list[str] = []
         tile_positions = [k for k, s in enumerate(slots) if s.kind == "tile"]
         if not tile_positions:
-            return self.loops_and_body([self.plain_header(s) for s in slots], 0)
+            return self.loops_and_body([self._marked(k, s, self.plain_header(s)) for k, s in enumerate(slots)], 0)
         last_tile = tile_positions[-1]
         single = main_and_remainder(plan)
-        for s in slots[: last_tile + (0 if single else 1)]:
+        for k, s in enumerate(slots[: last_tile + (0 if single else 1)]):
             if s.kind == "tile":
                 tiles[s.iterator] = s.name
-                headers.append(self.tile_header(s))
+                headers.append(self._marked(k, s, self.tile_header(s)))
             elif s.kind == "point":
-                headers.append(self.point_header(s, tiles[s.iterator], full=False))
+                headers.append(self._marked(k, s, self.point_header(s, tiles[s.iterator], full=False)))
             else:
-                headers.append(self.plain_header(s))
+                headers.append(self._marked(k, s, self.plain_header(s)))
         rest = slots[last_tile + 1:]
         depth = len(headers)
         if single:
@@ -416,6 +486,15 @@ class NestEmitter:
         return self._headers_only(prefix, depth) + em.lines(depth + len(prefix))
 
     def _rest_header(self, s: Slot, mode: str, tiles: dict[str, str]) -> str:
+        last = len(self.plan.slots) - 1
+        if self.omp is not None and s is self.plan.slots[last]:  # every copy of the innermost loop
+            canonical = self.omp.canonical_clamp and s.kind == "point" and mode == "clamp"
+            header = self.omp_clamp_header(s, tiles[s.iterator]) if canonical else \
+                self._unmarked_rest_header(s, mode, tiles)
+            return self._marked(last, s, header)
+        return self._unmarked_rest_header(s, mode, tiles)
+
+    def _unmarked_rest_header(self, s: Slot, mode: str, tiles: dict[str, str]) -> str:
         if s.kind != "point":
             return self.plain_header(s)
         if mode == "remainder":
@@ -461,7 +540,11 @@ class NestEmitter:
         return LoopForm(s.iterator, u, decl=decl, main=main, remainder=rem, offset=lp.step * lp.direction, runs=runs)
 
     def _headers_only(self, headers: list[str], depth: int) -> list[Line]:
-        return [Line(self.base + self.unit * (depth + k), h) for k, h in enumerate(headers)]
+        out: list[Line] = []
+        for k, h in enumerate(headers):
+            out += pragma_lines(self.base + self.unit * (depth + k), h)
+            out.append(Line(self.base + self.unit * (depth + k), h))
+        return out
 
     def _main_and_remainder(self, headers: list[str], tile: Slot, rest: list[Slot]) -> list[Line]:
         """One strip-mined loop: a main loop over whole tiles, then the remainder loop."""
@@ -489,6 +572,8 @@ class NestEmitter:
         text = self.src.text[self.nest.start:self.nest.end].replace("\r\n", "\n").split("\n")
         original = [Line(self.base, text[0])] + [
             Line(self.base, ln[len(self.base):]) if ln.startswith(self.base) else Line("", ln) for ln in text[1:]]
+        if self.omp is not None:  # the untouched copy keeps the pragma the rewrite moved
+            original = [Line(self.base, p) for p in self.omp.original_prefix] + original
         return ([Line(self.base, f"if ({' && '.join(checks)}) {{")] + self._shift(lines) +
                 [Line(self.base, "} else {")] + self._shift(original) + [Line(self.base, "}")])
 
@@ -502,13 +587,14 @@ class NestEmitter:
 
 
 def emit_nest(src: SourceFile, nest: Nest, plan: TilePlan, facts: EmitFacts, guard: str,
-              checks: list[str] | None = None, jam=None) -> str:
+              checks: list[str] | None = None, jam=None, omp=None) -> str:
     """The replacement text for nest.start..nest.end (first line starts at the for's column).
 
     With ``checks``, the rewrite runs only when they hold and the original nest otherwise.
     With ``jam`` (an emit_jam.JamContext), loops inside the tiles are unrolled and jammed; the
-    lines of the loops holding copies are recorded in it."""
-    em = NestEmitter(src, nest, plan, facts, jam)
+    lines of the loops holding copies are recorded in it. With ``omp`` (a pragmas.Placement), the
+    pragmas of the nest are printed on their loops."""
+    em = NestEmitter(src, nest, plan, facts, jam, omp)
     lines = [Line(em.base, ln) for ln in guard.split("\n")]
     lines += [Line(em.base, c.replace("\r\n", "\n")) for c in nest.header_comments]
     body = em.c89_wrap(em.nest_lines())

@@ -6,16 +6,18 @@ Everything outside the model is a ``Refusal`` that names the construct at
 from __future__ import annotations
 
 import re
+from dataclasses import replace
 
 from pycparser import c_ast
 
+from . import pragmas
 from .affine import Ctx, outer_iterators
 from .body import BodyWalker
 from .ctype import TypeTable
 from .errors import Refusal
 from .frontend import LoopSite, TranslationUnit
 from .headers import extract_loop
-from .model import Loop, Nest
+from .model import Affine, Loop, Nest, Obligation
 from .scope import Symbol, visible_at_loops
 from .source import tokenize
 
@@ -42,8 +44,12 @@ def single_for(node: c_ast.Node) -> c_ast.For | None:
 
 
 def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] = frozenset(),
-               directive: int | None = None) -> Nest:
+               directive: int | None = None, keep_pragmas: bool = False) -> Nest:
     """The model of the nest whose outermost loop is ``site``, or a Refusal.
+
+    ``keep_pragmas``: the job places the pragmas on and in the nest itself (pragmas.py); a pragma
+    right before an inner perfect loop then does not end the perfect nest, and loop hints
+    inside the body are accepted. Otherwise every pragma on or in the nest is refused.
 
     ``directive``: the offset of a pragma right before the nest that the rewrite carries out
     (and removes); any other pragma on the nest is still refused."""
@@ -64,14 +70,19 @@ def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] 
         if not loop.declared_in_for:
             ctx.outer_declared.append(loop.iterator)
         nxt = single_for(node.stmt)
+        if nxt is None and keep_pragmas:
+            nxt = pragmas.for_after_pragmas(node.stmt)
         if nxt is None:
             break
         s = next(c for c in s.children if c.node is nxt)
         node = nxt
     body = BodyWalker(ctx)
+    if keep_pragmas:
+        body.pragma_check = lambda n: pragmas.check_body_pragma(ctx, n)
     ctx.locals_.append({})
     body.stmt(node.stmt, ())
     _check_writes(ctx)
+    _check_shapes(ctx)
     _check_altered(ctx, perfect[0])
     outer = perfect[0]
     innermost = perfect[-1]
@@ -83,16 +94,20 @@ def build_nest(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] 
             comments.append(t.text)
         elif t.kind == "pp":
             pps.append(t)
+    if pps and keep_pragmas:
+        pps = pragmas.between_headers(tu, pps, perfect)
     if pps:
         raise ctx.refuse("a preprocessor line between the loop headers would be detached by the rewrite",
                          offset=pps[0].start)
-    _check_pragma_on(ctx, outer.for_offset, directive)
+    if not keep_pragmas:
+        _check_pragma_on(ctx, outer.for_offset, directive)
     macros = _subscript_macros(tu, innermost)
     return Nest(
         path=tu.source.path, function=site.function, line=outer.line, col=outer.col,
         start=outer.for_offset, end=outer.body_end, perfect=tuple(perfect), inner=tuple(ctx.inner),
         statements=tuple(ctx.statements), params=tuple(ctx.params.values()), arrays=tuple(ctx.arrays.values()),
         context=tuple(_enclosing_context(tu, site, assume_pure)), obligations=tuple(ctx.obligations),
+        in_row=tuple(ctx.in_row),
         header_comments=tuple(comments), outer_declared=tuple(ctx.outer_declared), macros_used=tuple(macros),
     )
 
@@ -147,6 +162,65 @@ def _check_altered(ctx: Ctx, outer: Loop) -> None:
                 "(for example -U__GNUC__) change the code here (a __GNUC__ branch, an attribute, or a macro "
                 "such as assert that expands differently)",
                 path=tu.source.path, line=line, column=1, source_line=tu.source.line_text(line))
+
+
+def _check_shapes(ctx: Ctx) -> None:
+    """Every access of a flattened array must use the same row lengths (one linearisation):
+    only then are two accesses the same element exactly when their recovered subscripts are.
+    The array then has the recovered number of dimensions."""
+    spell = {p.name: p.text for p in ctx.params.values()}
+    for key, seen in ctx.shapes.items():
+        shapes = {r for r, _, _ in seen}
+        if len(shapes) == 1 or (len(shapes) == 2 and () in shapes and all(len(r) <= 1 for r in shapes)):
+            continue  # one linearisation (affine subscripts of a one-row-length array are divided too)
+        first = next(x for x in seen if x[0])
+        other = next(x for x in seen if x[0] != first[0])
+        info = ctx.arrays[key]
+
+        def how(x, name: str = info.name) -> str:
+            return (f"{name}[{x[2]}] (rows of " + " x ".join(spell.get(r, r) for r in x[0]) + ")") if x[0] \
+                else f"{name}[{x[2]}] (one dimension)"
+        line, col = other[1]
+        raise Refusal(f"'{info.name}' is accessed as {how(other)} here and as {how(first)} at "
+                      f"{first[1][0]}:{first[1][1]}; "
+                      "the two linearisations cannot be compared element by element, so the dependences between "
+                      "them are unknown", path=ctx.tu.source.path, line=line, column=col,
+                      source_line=ctx.tu.source.line_text(line))
+    for key, seen in ctx.shapes.items():
+        rows = next((r for r, _, _ in seen if r), ())
+        if rows:
+            info = ctx.arrays[key]
+            ctx.arrays[key] = replace(info, ndims=1 + len(rows), rows=tuple(spell.get(r, r) for r in rows))
+            _divide_affine(ctx, key, seen, rows[0])
+
+
+def _divide_affine(ctx: Ctx, key: str, seen, row: str) -> None:
+    """Affine subscripts of an array flattened with one row length (``A[3*ld + j]``, ``A[j]``)
+    are divided by it too: ``(3, j)``, ``(0, j)``, with the same in-row obligations."""
+    k = 0
+    statements = []
+    for st in ctx.statements:
+        accesses = []
+        for acc in st.accesses:
+            if acc.array == key:
+                _, (line, col), text = seen[k]
+                k += 1
+                if len(acc.subscripts) == 1:
+                    a = acc.subscripts[0]
+                    quotient = a.coeff(row)
+                    rest = a - Affine.symbol(row).scale(quotient)
+                    its = [c for n, c in rest.terms if n in st.loops]
+                    if quotient > 0 and its and all(c < 0 for c in its):  # a row walked backwards
+                        quotient, rest = quotient - 1, rest + Affine.symbol(row)
+                    length = next(p.text for p in ctx.params.values() if p.name == row)
+                    what = f"the subscript {ctx.arrays[key].name}[{text}] stays in its row of {length} elements"
+                    ctx.in_row.append(Obligation(rest, st.loops, line, col, what))
+                    ctx.in_row.append(Obligation(Affine.symbol(row) - rest - Affine(const=1), st.loops, line, col,
+                                                 what))
+                    acc = replace(acc, subscripts=(Affine(const=quotient), rest))
+            accesses.append(acc)
+        statements.append(replace(st, accesses=tuple(accesses)))
+    ctx.statements[:] = statements
 
 
 def _check_writes(ctx: Ctx) -> None:

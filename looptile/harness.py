@@ -159,10 +159,13 @@ def _globals_used(tu: TranslationUnit, types: TypeTable, func: c_ast.FuncDef) ->
     return tuple(out)
 
 
-def render_harness(spec: KernelSpec, include: str, shapes: dict[str, str]) -> str:
+def render_harness(spec: KernelSpec, include: str, shapes: dict[str, str], absolute: tuple[str, ...] = ()) -> str:
     """The harness C text.  argv: seed, then the integer parameters in order, then the
     first-dimension extents of the arrays whose size is neither declared nor in ``shapes``
-    (name -> C expression of the element count, from --shape), in parameter order."""
+    (name -> C expression of the element count, from --shape), in parameter order.
+
+    ``absolute``: floating-point objects whose initial values are made non-negative (the
+    build of verify that sums the absolute values of reassociated terms)."""
     scalars, floats, arrays, args = [], [], [], []
     k = 2
     for p in spec.params:
@@ -172,7 +175,7 @@ def render_harness(spec: KernelSpec, include: str, shapes: dict[str, str]) -> st
             k += 1
     for p in spec.params:
         if p.kind == "float":
-            floats.append({"decl": f"{p.ctype.spelling} {p.name}", "name": p.name})
+            floats.append({"decl": f"{p.ctype.spelling} {p.name}", "name": p.name, "absolute": p.name in absolute})
         elif p.kind == "array":
             if p.dims and p.dims[0] is not None and all(p.dims):
                 count = " * ".join(f"looptile_extent({d})" for d in p.dims)
@@ -189,14 +192,28 @@ def render_harness(spec: KernelSpec, include: str, shapes: dict[str, str]) -> st
                 count = f"{first} * {rest}"
                 dims = [f"(long long){first}"] + [f"(long long)({d})" for d in p.dims[1:]]
             arrays.append({"name": p.name, "elem": p.ctype.spelling or "double", "count": count,
-                           "kind": _fill_kind(p.ctype), "dims": dims})
+                           "kind": _fill_kind(p.ctype), "dims": dims,
+                           "absolute": p.name in absolute and p.ctype.kind == "float"})
         args.append(f"looptile_a_{p.name}" if p.kind == "array" else p.name)
     globals_ = []
     for g in spec.globals:
         dims = [f"(long long)(sizeof {g.name}{'[0]' * d} / sizeof {g.name}{'[0]' * (d + 1)})"
                 for d in range(g.ndims)] or ["1"]
         globals_.append({"name": g.name, "elem_size": f"sizeof {g.name}{'[0]' * g.ndims}",
-                         "kind": _fill_kind(g.elem), "dims": dims})
+                         "kind": _fill_kind(g.elem), "dims": dims, "elem": g.elem.spelling or "double",
+                         "absolute": g.name in absolute and g.elem.kind == "float"})
     return render("harness.c.j2", kernel=spec.function, include=include, argc=k, scalars=scalars,
                   floats=floats, arrays=arrays, globals=globals_, returns=spec.returns,
-                  call_args=", ".join(args)) + "\n"
+                  call_args=", ".join(args), alias=alias_pair(spec)) + "\n"
+
+
+def alias_pair(spec: KernelSpec) -> dict[str, str] | None:
+    """The two array parameters that the harness makes overlap when LOOPTILE_OVERLAP is set in
+    its environment (the first two with the same element type), to run the kernel once with
+    overlapping arguments: the second then starts in the middle of the first's buffer."""
+    arrays = [p for p in spec.params if p.kind == "array"]
+    for k, a in enumerate(arrays):
+        for b in arrays[k + 1:]:
+            if (a.ctype.spelling or "double") == (b.ctype.spelling or "double"):
+                return {"first": a.name, "second": b.name, "kind": str(_fill_kind(a.ctype))}
+    return None

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
 
+from . import reduction
 from .copies import body_node, check_body, check_copies, scalarizer, wide_distances
 from .emit import Line, literal, render
 from .emit_jam import CopySite, JamEmitter, JamFacts, SiteLine, fresh_names, plain_forms, reindent, site_lines
@@ -21,6 +22,7 @@ from .pipeline import (
     describe_witness,
     directive_removal,
     guard_text,
+    in_row_checks,
     select,
 )
 from .splice import Edit, apply_edits
@@ -35,6 +37,7 @@ class JamOutcome:
     nest: Nest
     plan: JamPlan
     notes: tuple[str, ...] = field(default=())
+    reassociated: tuple[str, ...] = ()  # floating-point accumulations the rewrite reorders (verify's tolerance)
 
 
 def jam(tu: TranslationUnit, sel: str, req: JamRequest, opts: TileOptions, scalarize: bool = False) -> JamOutcome:
@@ -55,7 +58,9 @@ def unroll_full(tu: TranslationUnit, sel: str, opts: TileOptions) -> JamOutcome:
     src = tu.source
     site = select(tu, sel)
     _check_not_rewritten(tu, site, opts)
-    nest, _analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive)
+    nest, _analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive,
+                              reassociate=opts.reassociate, assume_in_row=opts.assume_in_row)
+    in_row_checks(tu, nest, _analysis, opts, versioning=False)
     lp = nest.perfect[0]
     where = dict(path=nest.path, line=lp.line, column=lp.col, source_line=src.line_text(lp.line))
     names = sorted(lp.start.value.names() | lp.limit.value.names())
@@ -119,7 +124,9 @@ def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan, scalarize:
     src = tu.source
     site = select(tu, sel)
     _check_not_rewritten(tu, site, opts)
-    nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive)
+    nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive,
+                             reassociate=opts.reassociate, assume_in_row=opts.assume_in_row)
+    in_row_checks(tu, nest, analysis, opts, versioning=False)
     plan: JamPlan = make_plan(nest)
     if scalarize:
         plan = replace(plan, scalarize=True)
@@ -128,7 +135,7 @@ def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan, scalarize:
         assert legality.witness is not None
         what = "unrolling " + " and ".join(f"'{it}' by {u}" for it, u in plan.factors) + \
             (" and jamming the copies" if plan.kind == "jam" else "")
-        head, details = describe_witness(what, legality.witness, nest)
+        head, details = describe_witness(what, legality.witness, nest, analysis.reassociation)
         raise Refusal(head, path=nest.path, line=nest.line, column=nest.col,
                       source_line=src.line_text(nest.line), details=details)
     if nest.macros_used and src.text[src.line_starts[nest.line - 1]: nest.start].strip():
@@ -146,7 +153,7 @@ def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan, scalarize:
                           f"'{target.iterator}', which is itself unrolled here; leave it out of --factors",
                           path=nest.path, line=target.line, column=target.col)
         em.scalarize = scalarizer(tu, nest, analysis, em, renames, target.iterator)
-    guard = guard_text(nest, plan, analysis, opts)
+    guard = guard_text(nest, plan, analysis, opts, reordered=legality.reordered)
     lines = [Line(em.base, ln) for ln in guard.split("\n")]
     lines += [Line(em.base, c.replace("\r\n", "\n")) for c in nest.header_comments]
     lines += em.lines()
@@ -157,12 +164,13 @@ def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan, scalarize:
     first = nest.line - shift + prefix
     check_copies(tu, nest, new, body, facts, [(first + k, site) for k, site in site_lines(lines)],
                  (first, first + text.count("\n")))
-    notes = [f"assumed: {a}" for a in opts.assumptions]
+    notes = [f"assumed: {a}" for a in opts.assumptions] + reduction.notes(analysis.reassociation, legality.reordered)
     if scalarize:
         kept = sorted({g.element for site in em.sites for g in site.scalars})
         notes.append(f"kept in locals during each run of loop '{target.iterator}': "
                      + (", ".join(kept[:12]) or "nothing") + (", ..." if len(kept) > 12 else ""))
-    return JamOutcome(src.path, src.data, new, nest, plan, tuple(notes))
+    return JamOutcome(src.path, src.data, new, nest, plan, tuple(notes),
+                      reduction.floating(analysis.reassociation, legality.reordered))
 
 
 def finish_nest_text(src, nest: Nest, text: str) -> tuple[str, int]:

@@ -136,6 +136,10 @@ class ArrayInfo:
     ndims: int
     local: bool = False  # declared inside the nest (private to the enclosing iterations)
     restrict: bool = False
+    # A flattened array (``A[i*ld + j]`` read as ``A[i][j]``): the C spellings of the lengths of
+    # dimensions 1.. (the model's ``ndims`` counts the recovered dimensions).
+    rows: tuple[str, ...] = ()
+    pointer: bool = False  # reached through a pointer (a pointer variable or field, an array parameter)
 
 
 @dataclass(frozen=True)
@@ -164,6 +168,9 @@ class Nest:
     arrays: tuple[ArrayInfo, ...]
     context: tuple[str, ...] = ()  # isl constraints on parameters known from enclosing loops
     obligations: tuple[Obligation, ...] = ()
+    # Flattened subscripts stay in their rows (``j >= 0``, ``ld - 1 - j >= 0``): what makes the
+    # multi-dimensional reading exact; proven, tested at run time, or asserted by the user.
+    in_row: tuple[Obligation, ...] = ()
     header_comments: tuple[str, ...] = ()  # comments between the perfect loops' headers
     outer_declared: tuple[str, ...] = ()  # iterators declared before their for statement
     macros_used: tuple[tuple[str, str], ...] = ()  # integer macros whose value the proof used
@@ -202,3 +209,31 @@ class ScheduleDim:
     block: int | None = None  # iterations times step of one tile
     origin: Affine | None = None
     when: tuple[str, int, bool] | None = None
+
+
+@dataclass(frozen=True)
+class Accumulation:
+    """Statements of a nest that accumulate into one object with + or - (``s += e``, ``y[i] -= e``,
+    ``s = s + e``, ``s = e + s``, ``s++``), each reading and writing only that element of it."""
+
+    key: str  # ArrayInfo.key
+    name: str  # C name
+    kind: str  # "float", "signed" (signed integer arithmetic) or "unsigned" (modular arithmetic)
+    statements: tuple[str, ...]
+    allowed: bool  # consented with --reassociate, or unsigned: the order of these updates may change
+
+
+@dataclass(frozen=True)
+class Reassociation:
+    """The accumulations of a nest (see looptile/reduction.py). The legality test drops the
+    dependences between two allowed updates of the same object, and only those."""
+
+    accumulations: tuple[Accumulation, ...] = ()
+
+    def allowed_statements(self, key: str) -> frozenset[str]:
+        return frozenset(s for a in self.accumulations if a.key == key and a.allowed for s in a.statements)
+
+    def of_statements(self, name: str, first: str, second: str) -> Accumulation | None:
+        """The accumulation into C name ``name`` that both statements update, if any."""
+        both = [a for a in self.accumulations if a.name == name and {first, second} <= set(a.statements)]
+        return both[0] if both else None

@@ -9,7 +9,7 @@ from dataclasses import dataclass, field, replace
 
 from pycparser import c_parser
 
-from . import deps, extract, frontend, toolchain
+from . import ctest, deps, extract, frontend, overlap, pragmas, reduction, toolchain
 from .deps import Dependence, Legality, NestAnalysis, Witness
 from .emit import (
     GUARD_MARK,
@@ -24,7 +24,7 @@ from .emit import (
 from .errors import InternalError, Refusal, UsageError
 from .flags import CompileFlags
 from .frontend import LoopSite, TranslationUnit
-from .model import Affine, Nest
+from .model import Affine, Nest, Reassociation
 from .source import SourceFile, read_source
 from .splice import Edit, apply_edits
 from .transform.tile import TilePlan, TileRequest, plan_tiling
@@ -40,6 +40,12 @@ class TileOptions:
     # The offset of a directive (a pragma right before the nest) that this rewrite carries out:
     # its lines are removed and the guard comment takes its place.
     directive: int | None = None
+    # --assume-in-row: flattened subscripts (A[i*ld + j]) stay in their rows; recorded, not tested
+    assume_in_row: bool = False
+    # --check-overlap: test at run time that the arrays reached through pointers do not overlap
+    check_overlap: bool = False
+    reassociate: tuple[str, ...] = ()  # --reassociate NAME: accumulations whose additions may be reordered
+    parallel: bool = False  # --parallel: mark the outermost loop that carries no dependence (pragmas.py)
 
 
 @dataclass(frozen=True)
@@ -50,6 +56,7 @@ class TileOutcome:
     nest: Nest
     plan: TilePlan
     notes: tuple[str, ...] = field(default=())
+    reassociated: tuple[str, ...] = ()  # floating-point accumulations the rewrite reorders (verify's tolerance)
 
 
 def load(path: str, flags: CompileFlags) -> TranslationUnit:
@@ -101,7 +108,8 @@ def inside(s: LoopSite, outer: LoopSite) -> bool:
 
 # ---------------------------------------------------------------- messages
 
-def describe_witness(what: str, w: Witness, nest: Nest) -> tuple[str, list[str]]:
+def describe_witness(what: str, w: Witness, nest: Nest,
+                     reassociation: Reassociation | None = None) -> tuple[str, list[str]]:
     verb_src = "writes" if w.source_writes else "reads"
     verb_dst = "writes" if w.sink_writes else "reads"
     head = (f"{what} would run {w.sink.render()} before {w.source.render()}, but {w.source.render()} {verb_src} "
@@ -113,7 +121,11 @@ def describe_witness(what: str, w: Witness, nest: Nest) -> tuple[str, list[str]]
     for name, line in sorted(lines.items()):
         details.append(f"{name} is the statement at {nest.path}:{line}")
     arr = next((a for a in nest.arrays if a.name == w.element.split("[")[0]), None)
-    if arr is not None and arr.ndims == 0 and not arr.local and arr.elem.kind == "float":
+    consent = reduction.advice(reassociation, arr.name, w.source.statement, w.sink.statement) \
+        if arr is not None and reassociation is not None else None
+    if consent:
+        details.append(consent)
+    elif arr is not None and arr.ndims == 0 and not arr.local and arr.elem.kind == "float":
         details.append(f"'{arr.name}' is a floating-point accumulation: reordering it would change the rounding "
                        "of the result")
     return head, details
@@ -133,14 +145,61 @@ def summarize(deps: list[Dependence]) -> list[str]:
 # ---------------------------------------------------------------- the tile job
 
 def analyse(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str],
-            assumptions: tuple[str, ...], directive: int | None = None) -> tuple[Nest, NestAnalysis]:
-    nest = extract.build_nest(tu, site, assume_pure, directive)
-    analysis = NestAnalysis(nest, assumptions)
+            assumptions: tuple[str, ...], directive: int | None = None,
+            assume_in_row: bool = False, reassociate: tuple[str, ...] = (),
+            keep_pragmas: bool = False) -> tuple[Nest, NestAnalysis]:
+    nest = extract.build_nest(tu, site, assume_pure, directive, keep_pragmas)
+    analysis = NestAnalysis(nest, assumptions, assume_in_row,
+                            reassociation=reduction.reassociation(tu, nest, reassociate))
     for o in analysis.failing_obligations():
         raise Refusal(f"{o.what} is computed in unsigned arithmetic and can wrap around, so C does not "
                       "compute what the analysis would assume; rewrite the bound or add --assume",
                       path=nest.path, line=o.line, column=o.col, source_line=tu.source.line_text(o.line))
+    if analysis.in_row_never and not assume_in_row:
+        o = analysis.in_row_failing[0]
+        raise Refusal(f"cannot read the flattened subscript as rows: {o.what.replace(' stays in ', ' leaves ')} "
+                      "whenever the nest runs",
+                      path=nest.path, line=o.line, column=o.col, source_line=tu.source.line_text(o.line),
+                      details=["the element would then be in the next row, so the two-dimensional reading that "
+                               "the analysis needs is not exact; index the row with its own iterator range"])
     return nest, analysis
+
+
+def in_row_checks(tu: TranslationUnit, nest: Nest, analysis: NestAnalysis, opts: TileOptions,
+                  versioning: bool = True) -> list[str]:
+    """The run-time test under which the flattened subscripts stay in their rows ([] when it is
+    proven, or asserted with --assume-in-row), as one C condition; a refusal when it is needed
+    but cannot be printed exactly, or when the job cannot version (``versioning`` False)."""
+    if not analysis.in_row_failing or opts.assume_in_row:
+        return []
+    o = analysis.in_row_failing[0]
+    where = dict(path=nest.path, line=o.line, column=o.col, source_line=tu.source.line_text(o.line))
+    try:
+        text = ctest.condition(analysis.in_row_conditions(), {p.name: p for p in nest.params})
+    except deps.BoundsNotAffine:
+        text = None
+    if text is None or not versioning:
+        why = ("the run-time test it needs cannot be printed exactly in C" if text is None else
+               f"this job does not version the nest (tile does), and the test it needs is {text}")
+        raise Refusal(f"cannot prove that {o.what} for every size; {why}", **where,
+                      details=["if it holds for every call, say so with --assume-in-row (recorded in the guard "
+                               "comment); --assume COND also works for a condition on the parameters"])
+    return [text]
+
+
+def in_row_notes(nest: Nest, analysis: NestAnalysis, opts: TileOptions, checks: list[str]) -> list[str]:
+    """What the guard comment says about the flattened arrays."""
+    flat = [a for a in nest.arrays if a.rows]
+    if not flat:
+        return []
+    shapes = ", ".join(f"{a.name} as rows of {' x '.join(a.rows)}" for a in flat)
+    if not analysis.in_row_failing:
+        return [f"reads {shapes} (each flattened subscript stays in its row: proven)"]
+    if opts.assume_in_row:
+        return [f"reads {shapes}, and each flattened subscript stays in its row (asserted by the user with "
+                "--assume-in-row)"]
+    return [f"reads {shapes}; each flattened subscript stays in its row when {' && '.join(checks)} (checked: "
+            "otherwise the original nest runs)"]
 
 
 def _check_not_rewritten(tu: TranslationUnit, site: LoopSite, opts: TileOptions) -> None:
@@ -257,11 +316,13 @@ def emit_facts(nest: Nest, analysis: NestAnalysis, plan: TilePlan, c89: bool) ->
     return EmitFacts(frozenset(wide), c89, extra)
 
 
-def _overflow_bounds(nest: Nest, analysis: NestAnalysis, plan: TilePlan, facts: EmitFacts) -> list[str]:
-    """C conditions (``n <= 2147483631``) under which the printed expressions cannot overflow."""
+def _overflow_bounds(nest: Nest, analysis: NestAnalysis, plan: TilePlan, facts: EmitFacts,
+                     extra: tuple = ()) -> list[str]:
+    """C conditions (``n <= 2147483631``) under which the printed expressions (and ``extra``
+    ones) cannot overflow."""
     tiles = {s.name: s.iterator for s in plan.slots if s.kind == "tile"}
     try:
-        bounds = deps.overflow_guard(analysis, tiles, printed_expressions(nest, plan, facts))
+        bounds = deps.overflow_guard(analysis, tiles, printed_expressions(nest, plan, facts) + list(extra))
     except deps.BoundsNotAffine as exc:
         raise Refusal(f"cannot bound the values the rewritten loop bounds compute ({exc}), so the rewrite could "
                       "overflow for some sizes", path=nest.path, line=nest.line, column=nest.col) from None
@@ -278,16 +339,23 @@ def _overflow_bounds(nest: Nest, analysis: NestAnalysis, plan: TilePlan, facts: 
 
 
 def guard_text(nest: Nest, plan: TilePlan, analysis: NestAnalysis, opts: TileOptions,
-               checked: list[str] | None = None) -> str:
+               checked: list[str] | None = None, rows_checked: list[str] | None = None,
+               reordered: tuple[str, ...] = (), placed: tuple[str, ...] = (),
+               overlap: tuple[tuple[str, str], ...] = ()) -> str:
     deps = summarize(analysis.dependences())
     constrained = []
     if deps:
         constrained.append("dependences kept: " + "; ".join(deps[:6]) + ("; ..." if len(deps) > 6 else ""))
     else:
         constrained.append("no dependences between iterations")
+    constrained += list(placed)
     shared = [a.name for a in nest.arrays if not a.local and a.ndims > 0]
     assumes = []
-    if len(shared) > 1:
+    if overlap:
+        tested = "; ".join(f"{x} and {y}" for x, y in overlap)
+        assumes.append(f"the arrays {', '.join(shared)} do not overlap (checked at run time for {tested}, comparing "
+                       "their address ranges as uintptr_t: otherwise the original nest runs)")
+    elif len(shared) > 1:
         assumes.append(f"the arrays {', '.join(shared)} do not overlap")
     elif shared:
         assumes.append(f"no other name aliases {shared[0]}")
@@ -295,6 +363,8 @@ def guard_text(nest: Nest, plan: TilePlan, analysis: NestAnalysis, opts: TileOpt
     if opaque:
         assumes.append(f"the nest does not change {', '.join(opaque)}")
     assumes += [f"{a} (asserted by the user)" for a in opts.assumptions]
+    assumes += reduction.guard_phrases(analysis.reassociation, reordered)
+    assumes += in_row_notes(nest, analysis, opts, rows_checked or [])
     if checked:
         assumes.append(f"{' && '.join(checked)}, so that no bound overflows (checked: otherwise the original "
                        "nest runs)")
@@ -315,7 +385,11 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
     src = tu.source
     site = select(tu, sel)
     _check_not_rewritten(tu, site, opts)
-    nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive)
+    nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive, opts.assume_in_row,
+                             opts.reassociate, keep_pragmas=True)
+    rows_checked = in_row_checks(tu, nest, analysis, opts)
+    ov = overlap.overlap_check(tu, nest, analysis) if opts.check_overlap else None
+    overlap_checked = [ov.condition] if ov is not None else []
     plan = plan_tiling(nest, req, tu.identifiers, _from_analysis(analysis, deps.band_hull),
                        _from_analysis(analysis, deps.scan_bounds))
     if req.jam or req.scalarize:
@@ -331,10 +405,17 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
         assert legality.witness is not None
         what = (f"tiling ({', '.join(plan.band)})" if plan.band else
                 f"permuting ({', '.join(nest.iterators)}) to ({', '.join(s.name for s in plan.slots)})")
-        head, details = describe_witness(what, legality.witness, nest)
+        head, details = describe_witness(what, legality.witness, nest, analysis.reassociation)
         raise Refusal(head, path=nest.path, line=nest.line, column=nest.col,
                       source_line=src.line_text(nest.line), details=details)
     notes: list[str] = []
+    placement = pragmas.place(tu, nest, analysis, plan, pragmas.collect(tu, nest, opts.directive), opts.parallel,
+                              tu.flags.c89)
+    if main_and_remainder(plan) and any(placement.parallel_at(k) for k, s in enumerate(plan.slots)
+                                        if s.kind == "tile"):
+        plan = replace(plan, remainder="clamp")  # the main loop's test is not OpenMP's canonical form
+        notes.append("the worksharing tile loop is a plain loop over all tiles, so the remainder style is clamp")
+    notes += placement.notes
     try:
         facts = emit_facts(nest, analysis, plan, tu.flags.c89)
     except SplitImpossible:
@@ -346,15 +427,20 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
         facts = emit_facts(nest, analysis, plan, tu.flags.c89)
         notes.append("the whole-tile test of this band is not one conjunction of affine conditions, so the "
                      "remainder style is clamp")
-    guard_bounds = _overflow_bounds(nest, analysis, plan, facts)
+    guard_bounds = _overflow_bounds(nest, analysis, plan, facts, tuple(placement.overflow_terms(nest, plan)))
+    guard_bounds += [c for c in placement.overflow_checks(nest, plan) if c not in guard_bounds]
     jam = _jam_context(tu, nest, analysis, plan) if plan.jam else None
-    text = emit_nest(src, nest, plan, facts, guard_text(nest, plan, analysis, opts, guard_bounds), guard_bounds, jam)
+    text = emit_nest(src, nest, plan, facts, guard_text(nest, plan, analysis, opts, guard_bounds, rows_checked,
+                                                           legality.reordered, placement.guard_lines(plan),
+                                                           ov.pairs if ov is not None else ()),
+                     rows_checked + overlap_checked + guard_bounds, jam, placement)
     guard = _macro_guard(nest, src)
     if guard:
         text = "\n".join(guard.split("\n")[:1] + [src.indent_of(nest.start) + g for g in guard.split("\n")[1:]]) \
             + "\n" + src.indent_of(nest.start) + text
         text = text.replace("\n", src.newline) if src.newline != "\n" else text
-    removed = directive_removal(tu, opts.directive)
+    removed = directive_removal(tu, opts.directive) + [e for off in placement.removed
+                                                        for e in directive_removal(tu, off)]
     new = apply_edits(src.data, [Edit(nest.start, nest.end, text)] + removed)
     shift = sum(src.line_col(e.end)[0] - src.line_col(e.start)[0] for e in removed)
     check_parses(tu, nest, text, new, shift)
@@ -368,9 +454,22 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
             notes.append(f"kept in locals during each run of loop '{plan.slots[-1].iterator}': "
                          + (", ".join(kept[:12]) or "nothing") + (", ..." if len(kept) > 12 else ""))
     notes += [f"assumed: {a}" for a in opts.assumptions]
+    notes += reduction.notes(analysis.reassociation, legality.reordered)
     notes += [f"the rewrite runs only when {c} (no bound can overflow then); the original nest runs otherwise"
               for c in guard_bounds]
-    return TileOutcome(src.path, src.data, new, nest, plan, tuple(notes))
+    notes += [f"the rewrite runs only when {c} (the flattened subscripts stay in their rows then); the original "
+              "nest runs otherwise" for c in rows_checked]
+    if ov is not None:
+        pairs = "; ".join(f"{x} and {y}" for x, y in ov.pairs)
+        notes.append(f"the rewrite runs only when the address ranges of {pairs} do not overlap (tested at run "
+                     "time); the original nest runs otherwise")
+    elif opts.check_overlap:
+        notes.append("--check-overlap: no two arrays of this nest can overlap (restrict, or distinct objects), so "
+                     "no run-time test is needed")
+    if opts.assume_in_row and analysis.in_row_failing:
+        notes.append("assumed (--assume-in-row): " + "; ".join(sorted({o.what for o in analysis.in_row_failing})))
+    return TileOutcome(src.path, src.data, new, nest, plan, tuple(notes),
+                       reduction.floating(analysis.reassociation, legality.reordered))
 
 
 def directive_removal(tu: TranslationUnit, directive: int | None) -> list[Edit]:

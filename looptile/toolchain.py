@@ -172,8 +172,8 @@ def build(source: str, exe: str, flags: CompileFlags, include_dir: str) -> Build
     return Build(proc.returncode == 0, exe, proc.stderr.decode("latin-1"))
 
 
-def run(exe: str, args: list[str], timeout: float) -> Run:
-    env = dict(os.environ)
+def run(exe: str, args: list[str], timeout: float, extra_env: dict[str, str] | None = None) -> Run:
+    env = dict(os.environ, **(extra_env or {}))
     env.setdefault("ASAN_OPTIONS", "detect_leaks=0")  # needs ptrace, which containers often forbid
     env.setdefault("UBSAN_OPTIONS", "print_stacktrace=0")
     try:

@@ -11,10 +11,11 @@ import struct
 import tempfile
 from dataclasses import dataclass, field
 
-from . import deps, extract, toolchain
+from . import deps, extract, reduction, toolchain
 from .errors import LooptileError, UsageError
 from .frontend import TranslationUnit
-from .harness import KernelSpec, kernel_spec, render_harness
+from .harness import KernelSpec, alias_pair, kernel_spec, render_harness
+from .tolerance import compare_within, tolerant_objects
 
 DEFAULT_SIZES = (0, 1, 2, 3, 5, 8, 13, 17)
 
@@ -26,6 +27,11 @@ class VerifyOptions:
     seed: int = 12345
     timeout: float = 30.0
     tile_sizes: tuple[int, ...] = ()
+    reassociated: tuple[str, ...] = ()  # floating-point accumulations reordered (--reassociate)
+    tolerance: float | None = None  # --tolerance; None: tolerance.default_tolerance of each element type
+    # also call the kernel with two array arguments overlapping (the last two parameter sets):
+    # both paths of a --check-overlap rewrite run
+    overlap: bool = False
 
 
 @dataclass(frozen=True)
@@ -56,7 +62,7 @@ def _analyses(tu: TranslationUnit, function: str) -> list[deps.NestAnalysis]:
     out = []
     for site in (s for s in func.loops if s.parent is None):
         try:
-            out.append(deps.NestAnalysis(extract.build_nest(tu, site)))
+            out.append(deps.NestAnalysis(extract.build_nest(tu, site), extents_only=True))
         except LooptileError:
             continue
     return out
@@ -86,17 +92,26 @@ def parameter_sets(spec: KernelSpec, analyses: list[deps.NestAnalysis],
                    opts: VerifyOptions) -> list[tuple[dict[str, int], list[int]]]:
     """(integer parameter values, first-dimension extents of undeclared-size arrays) for each run."""
     given = list(opts.params) or [{}]
-    unknown = [n for n in spec.other_ints if not all(n in g for g in given)]
+    # Row lengths of flattened arrays (A[i*ld + j]): when not given, each run takes the shared size
+    # (the tightest value for which the rows hold the loops' ranges), and the last size also runs
+    # with one less (the in-row test fails: the original nest runs) and a few more.
+    rows = {r for a in analyses for x in a.nest.arrays for r in x.rows} & set(spec.other_ints)
+    rows = {r for r in rows if not all(r in g for g in given)}
+    unknown = [n for n in spec.other_ints if not all(n in g for g in given) and n not in rows]
     if unknown:
         raise UsageError(f"give a value for the integer parameter(s) {', '.join(unknown)} with --params "
                          f"{unknown[0]}=VALUE (they are not loop bounds or array sizes)")
     runs = []
     for g in given:
         free = [n for n in spec.bound_params if n not in g]
-        for v in (sweep(opts.tile_sizes) if free else [None]):
+        sizes = sweep(opts.tile_sizes) if free or rows else [None]
+        cases = [(v, 0) for v in sizes] + ([(sizes[-1], -1), (sizes[-1], 3)] if rows and sizes[-1] else [])
+        for v, extra in cases:
             values = dict(g)
             for n in free:
                 values[n] = v
+            for n in rows:
+                values[n] = max((v or 0) + extra, 1)
             for n in spec.dim_params:
                 if n in values:
                     continue
@@ -194,17 +209,25 @@ def verify(tu: TranslationUnit, candidate: bytes, function: str, opts: VerifyOpt
     include_dir = os.path.dirname(os.path.abspath(src.path))
     with tempfile.TemporaryDirectory(prefix="looptile-verify-") as tmp:
         exes = {}
-        for label, data in (("original", src.data), (candidate_name, candidate)):
+        builds = [("original", src.data), (candidate_name, candidate)]
+        if opts.reassociated:  # a third build: the sums of the absolute values of the terms
+            try:
+                builds.append(("bound", reduction.bound_source(tu, function, opts.reassociated)))
+            except reduction.BoundUnavailable as exc:
+                return VerifyReport(2, (f"cannot compute the tolerance of the reassociated values: {exc}",
+                                        "verdict: no check was made"))
+        for label, data in builds:
             path = os.path.join(tmp, f"{label}.c")
             with open(path, "wb") as fh:
                 fh.write(data)
             harness = os.path.join(tmp, f"harness_{label}.c")
+            absolute = opts.reassociated if label == "bound" else ()
             with open(harness, "w", encoding="latin-1") as fh:
-                fh.write(render_harness(spec, path, opts.shapes))
+                fh.write(render_harness(spec, path, opts.shapes, absolute))
             b = toolchain.build(harness, os.path.join(tmp, label), tu.flags, include_dir)
             if not b.ok:
                 detail = [ln for ln in b.messages.splitlines() if "error" in ln][:5] or b.messages.splitlines()[:5]
-                if label == "original":
+                if label in ("original", "bound"):
                     return VerifyReport(2, tuple(["cannot build the harness for the original:"] + detail +
                                                  ["verdict: no check was made"]))
                 return VerifyReport(1, tuple([f"the {label} version does not compile:"] + detail +
@@ -225,33 +248,58 @@ def _run_all(spec: KernelSpec, runs, exes: dict[str, str], candidate_name: str,
              opts: VerifyOptions) -> VerifyReport:
     lines: list[str] = []
     kinds = _kinds(spec)
+    tolerant = tolerant_objects(spec, opts.reassociated)
     ints = [p.name for p in spec.params if p.kind == "int"]
     failed = 0
-    for values, counts in runs:
+    cases = [(values, counts, None) for values, counts in runs]
+    pair = alias_pair(spec)
+    if opts.overlap and pair is not None:
+        cases += [(values, counts, {"LOOPTILE_OVERLAP": "1"}) for values, counts in runs[-2:]]
+    for values, counts, env in cases:
         label = " ".join(f"{n}={values[n]}" for n in ints) or "(no integer parameters)"
+        if env:
+            label += f" ({pair['second']} inside {pair['first']})"
         args = [str(opts.seed)] + [str(values[n]) for n in ints] + [str(c) for c in counts]
-        ref = toolchain.run(exes["original"], args, opts.timeout)
+        ref = toolchain.run(exes["original"], args, opts.timeout, env)
         problem = _run_problem(ref)
         if problem:
             lines += [f"{label}: the original itself {problem}; the rewrite is not blamed",
                       "verdict: no check was made (fix the original or the sizes: --params, --shape)"]
             return VerifyReport(2, tuple(lines))
-        new = toolchain.run(exes[candidate_name], args, opts.timeout)
+        new = toolchain.run(exes[candidate_name], args, opts.timeout, env)
         problem = _run_problem(new)
         if problem:
             lines.append(f"{label}: FAIL: the {candidate_name} version {problem}")
             failed += 1
             continue
-        diff = compare(parse_dump(ref.stdout), parse_dump(new.stdout), kinds)
+        if opts.reassociated:
+            bound = toolchain.run(exes["bound"], args, opts.timeout, env)
+            problem = _run_problem(bound)
+            if problem:
+                lines += [f"{label}: the build that sums the absolute values of the terms {problem}",
+                          "verdict: no check was made (the tolerance of the reassociated values is unknown)"]
+                return VerifyReport(2, tuple(lines))
+            diff = compare_within(parse_dump(ref.stdout), parse_dump(new.stdout), parse_dump(bound.stdout), kinds,
+                                  tolerant, opts.tolerance)
+        else:
+            diff = compare(parse_dump(ref.stdout), parse_dump(new.stdout), kinds)
         if diff:
             lines.append(f"{label}: FAIL: {diff}")
             failed += 1
         else:
             lines.append(f"{label}: pass")
     if failed:
-        lines.append(f"verdict: DIFFERENT: {failed} of {len(runs)} parameter sets fail")
+        lines.append(f"verdict: DIFFERENT: {failed} of {len(cases)} parameter sets fail")
         return VerifyReport(1, tuple(lines))
-    lines.append(f"verdict: equal: {len(runs)} parameter sets compared bit for bit "
+    within = ""
+    if opts.reassociated:
+        bound = f"{opts.tolerance:g}" if opts.tolerance is not None else "the default tolerance of its type"
+        what = "the reassociated values" if tolerant == set(opts.reassociated) else \
+            "the floating-point outputs, which the reassociated local values may reach"
+        within = (f", except {what} ({', '.join(sorted(tolerant)) or 'none'}), compared within "
+                  f"{bound} times the sum of the absolute values of their terms")
+    overlapping = f" ({len(cases) - len(runs)} with overlapping arguments)" if len(cases) > len(runs) else ""
+    lines.append(f"verdict: equal: {len(cases)} parameter sets{overlapping} compared bit for bit{within} "
                  "(built with -O1 -ffp-contract=off and the address and undefined-behaviour sanitizers)")
     return VerifyReport(0, tuple(lines))
 
