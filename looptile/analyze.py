@@ -84,7 +84,7 @@ def _maximal_bands(a: NestAnalysis, its: tuple[str, ...]) -> tuple[tuple[str, ..
 
 
 def report(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] = frozenset(),
-           assumptions: tuple[str, ...] = ()) -> NestReport:
+           assumptions: tuple[str, ...] = (), assume_in_row: bool = False) -> NestReport:
     src = tu.source
     line, col = site.line, 1
     if site.token_index is not None:
@@ -92,14 +92,14 @@ def report(tu: TranslationUnit, site: LoopSite, assume_pure: frozenset[str] = fr
     base = dict(selectors=_selectors(site), function=site.function, line=line, column=col)
     try:
         nest = extract.build_nest(tu, site, assume_pure, keep_pragmas=True)  # placed (or refused) per request
-        a = NestAnalysis(nest, assumptions)
+        a = NestAnalysis(nest, assumptions, assume_in_row)
         failing = a.failing_obligations()
         if failing:
             o = failing[0]
             reason = f"{src.path}:{o.line}:{o.col}: refused: {o.what} can wrap around in unsigned arithmetic"
             return NestReport(**base, depth=len(nest.perfect), iterators=nest.iterators, loops=_loop_json(nest),
                               perfect=not nest.inner and len(nest.statements) <= 1, analysable=False, reason=reason)
-        if a.in_row_never:
+        if a.in_row_never and not assume_in_row:
             o = a.in_row_failing[0]
             reason = (f"{src.path}:{o.line}:{o.col}: refused: {o.what.replace(' stays in ', ' leaves ')} whenever "
                       "the nest runs")
@@ -130,6 +130,8 @@ def _in_row(nest: Nest, a: NestAnalysis) -> tuple[str, ...]:
     shapes = ", ".join(f"{x.name} as rows of {' x '.join(x.rows)}" for x in flat)
     if not a.in_row_failing:
         return (f"reads {shapes}; each flattened subscript stays in its row (proven)",)
+    if a.assume_in_row:
+        return (f"reads {shapes}; each flattened subscript stays in its row (asserted with --assume-in-row)",)
     try:
         test = ctest.condition(a.in_row_conditions(), {p.name: p for p in nest.params})
     except BoundsNotAffine:

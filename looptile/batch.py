@@ -36,6 +36,7 @@ class ApplyOptions:
     assume_pure: frozenset[str] = frozenset()
     assumptions: tuple[str, ...] = ()
     check: VerifyOptions | None = None  # --verify: compile and run each rewrite first
+    assume_in_row: bool = False  # --assume-in-row, for every directive
 
     def flags_for(self, path: str) -> CompileFlags:
         return from_compile_db(self.compile_db, path).plus(self.flags) if self.compile_db else self.flags
@@ -46,6 +47,7 @@ class ApplyOptions:
         parts += ["--compile-db", self.compile_db] if self.compile_db else list(self.flags.args)
         parts += [a for name in sorted(self.assume_pure) for a in ("--assume-pure", name)]
         parts += [a for cond in self.assumptions for a in ("--assume", cond)]
+        parts += ["--assume-in-row"] if self.assume_in_row else []
         return f"{' '.join(shlex.quote(x) for x in parts)} (directive at line {p.line}: {p.text})"
 
 
@@ -214,7 +216,7 @@ def carry_out(tu: TranslationUnit, f: Found, opts: ApplyOptions) -> _Result:
     d, path = f.directive, tu.source.path
     assert d is not None and f.site is not None and nest is not None
     topts = pipeline.TileOptions(opts.assumptions, opts.assume_pure, False, opts.command(path, d.pragma),
-                                 d.split_fallback, directive=d.pragma.offset)
+                                 d.split_fallback, directive=d.pragma.offset, assume_in_row=opts.assume_in_row)
     try:
         if pipeline.select(tu, nest.selector) is not f.site:
             raise InternalError(f"selector {nest.selector} does not name the loop after the directive", path=path,

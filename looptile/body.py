@@ -283,14 +283,17 @@ class BodyWalker:
         obligations ``0 <= j`` and ``j < ld``; a refusal with the reason when it is not one."""
         ctx = self.ctx
         try:
-            poly, t = polynomial(ctx, sub)
+            poly = polynomial(ctx, sub)
             spell = {p.name: p.text for p in ctx.params.values()}
             indices = {p.name for p in ctx.params.values() if p.kind == "outer-iterator"}
-            flat = delinearise(poly, set(ctx.iterators), lambda x: spell.get(x, x), indices)
+            flat = delinearise(poly.terms, set(ctx.iterators), lambda x: spell.get(x, x), indices)
         except NotAffine as exc:
             reason = why.reason if exc.reason == why.reason else f"{why.reason}, and {exc.reason}"
             raise ctx.refuse(f"a subscript of '{name}' is not an affine function of the loop iterators and "
                              f"parameters; {reason}", sub) from None
+        t = poly.narrow or poly.ctype
+        for o in poly.obligations:  # as for affine subscripts: a signed value converted to unsigned is >= 0
+            ctx.obligations.append(Obligation(o, tuple(ctx.iterators), at[0], at[1], f"a subscript of '{name}'"))
         if t.is_unsigned and t.bits < 64:
             kind = t.spelling or "a narrow unsigned type"
             raise ctx.refuse(f"the flattened subscript of '{name}' is computed in {kind}, where a product that "
@@ -339,7 +342,8 @@ class BodyWalker:
             raise ctx.refuse(f"the elements of '{name}' are not numbers", node)
         # Reached through a pointer: a pointer variable or field, or an array parameter (C adjusts
         # its type to a pointer); its elements may then be those of another array of the nest.
-        pointer = t.kind == "pointer" or (member is None and t.kind == "array" and sym.kind == "param")
+        pointer = t.kind == "pointer" or (member is None and t.kind == "array" and sym.kind == "param") or \
+            (member is not None and "->" in name)  # a member of a struct reached through a pointer
         info = ctx.arrays.setdefault(name, ArrayInfo(name, name, elem, ndims, restrict=t.restrict,
                                                      pointer=pointer and ndims > 0))
         return name, info

@@ -102,7 +102,8 @@ def analyze(files: tuple[str, ...], as_json: bool, **kw) -> None:
             doc[path] = {"nests": [], "error": exc.headline()}
             texts.append(exc.render())
             continue
-        reports = [analyze_mod.report(tu, s, frozenset(kw["assume_pure"]), tuple(kw["assumptions"]))
+        reports = [analyze_mod.report(tu, s, frozenset(kw["assume_pure"]), tuple(kw["assumptions"]),
+                                      kw["assume_in_row"])
                    for s in analyze_mod.reported_sites(tu)]
         doc[path] = {"nests": [r.as_json() for r in reports], "error": None}
         texts.append(analyze_mod.text_table(path, reports))
@@ -516,7 +517,7 @@ def apply_cmd(paths: tuple[str, ...], as_diff: bool, outdir: str | None, in_plac
     opts = batch.ApplyOptions(from_options(kw["includes"], kw["isystem"], kw["defines"], kw["undefines"],
                                            kw["include_files"], kw["std"]), kw.get("compile_db"),
                               frozenset(kw["assume_pure"]), tuple(kw["assumptions"]),
-                              _verify_options(kw, ()) if check else None)
+                              _verify_options(kw, ()) if check else None, kw["assume_in_row"])
     if sys.stderr.isatty() and len(files) >= 8:
         with click.progressbar(length=len(files), label="looptile apply", file=sys.stderr) as bar:
             outcomes = batch.run(files, opts, jobs or batch.default_jobs(), lambda o: bar.update(1))

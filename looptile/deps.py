@@ -808,20 +808,28 @@ def overflow_guard(analysis: NestAnalysis, tile_of: dict[str, str],
     return out
 
 
-def touched_box(analysis: NestAnalysis, array: str) -> list[tuple[Affine, Affine]]:
-    """Per dimension of ``array``, one affine lower and one affine upper bound (in the
-    parameters) of the indices the nest touches; BoundsNotAffine when isl's bounds are not single
-    affine expressions (several pieces, divisions)."""
+def _touched(analysis: NestAnalysis, array: str) -> isl.Set | None:
+    """The elements of ``array`` that some access of the nest touches (None: no access)."""
     um = None
     for write in (False, True):
         m = analysis._union(write, array)
         if m is not None:
             um = m if um is None else um.union(m)
     if um is None:
-        raise BoundsNotAffine("the nest does not touch the array")
+        return None
     sets: list[isl.Set] = []
     um.range().foreach_set(sets.append)
-    s = sets[0].intersect_params(_lift(analysis.context, sets[0]))
+    return sets[0] if sets else None
+
+
+def touched_box(analysis: NestAnalysis, array: str) -> list[tuple[Affine, Affine]]:
+    """Per dimension of ``array``, one affine lower and one affine upper bound (in the
+    parameters) of the indices the nest touches; BoundsNotAffine when isl's bounds are not single
+    affine expressions (several pieces, divisions)."""
+    s = _touched(analysis, array)
+    if s is None:
+        raise BoundsNotAffine("the nest does not touch the array")
+    s = s.intersect_params(_lift(analysis.context, s))
     out = []
     for k in range(s.dim(isl.dim_type.set)):
         out.append((_single_affine(s.dim_min(k)), _single_affine(s.dim_max(k))))
@@ -832,18 +840,9 @@ def access_extent(analysis: NestAnalysis, array: str, values: dict[str, int]) ->
     """Smallest and largest index of each dimension of ``array`` that the nest touches when the
     parameters have ``values`` (C names; parameters without a value range over all their values).
     None when the nest does not touch the array for these values."""
-    um = None
-    for write in (False, True):
-        m = analysis._union(write, array)
-        if m is not None:
-            um = m if um is None else um.union(m)
-    if um is None:
+    s = _touched(analysis, array)
+    if s is None:
         return None
-    sets: list[isl.Set] = []
-    um.range().foreach_set(sets.append)
-    if not sets:
-        return None
-    s = sets[0]
     for k in range(s.dim(isl.dim_type.param) - 1, -1, -1):
         name = _from_isl(s.get_dim_name(isl.dim_type.param, k))
         if name in values:

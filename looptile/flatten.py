@@ -59,25 +59,38 @@ def _of_affine(a: Affine) -> Poly:
     return p
 
 
-def polynomial(ctx: Ctx, node: c_ast.Node) -> tuple[Poly, CType]:
-    """The subscript as a polynomial over iterators and parameters, and its C type.
+@dataclass
+class Polynomial:
+    terms: Poly
+    ctype: CType
+    # The narrowest unsigned type any sum, difference or product is computed in (None: none).
+    narrow: CType | None = None
+    # ``a >= 0`` side conditions of the affine leaves (a signed value converted to unsigned).
+    obligations: tuple[Affine, ...] = ()
+
+
+def polynomial(ctx: Ctx, node: c_ast.Node) -> Polynomial:
+    """The subscript as a polynomial over iterators and parameters, with its C type.
 
     Sums, differences and products are expanded; every leaf is an affine value
     (``int_affine``). C computes the value modulo the type's range when it is unsigned, which
-    equals the polynomial whenever the result is a valid index (the caller refuses unsigned
-    types narrower than a pointer, where a wrapped product can be a valid index again)."""
+    equals the polynomial whenever the result is a valid index: with 64-bit arithmetic a value
+    outside 0..2^63 is outside every object, undefined behaviour the original already has. The
+    caller refuses narrower unsigned arithmetic (``narrow``), where a product that wraps around
+    can be a valid index again."""
     if isinstance(node, c_ast.BinaryOp) and node.op in ("+", "-", "*"):
-        a, ta = polynomial(ctx, node.left)
-        b, tb = polynomial(ctx, node.right)
-        t = common_int_type(ta, tb)
-        if node.op == "*":
-            return _mul(a, b), t
-        return _add(a, b, 1 if node.op == "+" else -1), t
+        a, b = polynomial(ctx, node.left), polynomial(ctx, node.right)
+        t = common_int_type(a.ctype, b.ctype)
+        narrow = min((x for x in (a.narrow, b.narrow, t if t.is_unsigned else None) if x is not None),
+                     key=lambda x: x.bits, default=None)
+        terms = _mul(a.terms, b.terms) if node.op == "*" else _add(a.terms, b.terms, 1 if node.op == "+" else -1)
+        return Polynomial(terms, t, narrow, a.obligations + b.obligations)
     if isinstance(node, c_ast.UnaryOp) and node.op in ("-", "+"):
-        a, t = polynomial(ctx, node.expr)
-        return (_add({}, a, -1) if node.op == "-" else a), t
-    value, t, _ = int_affine(ctx, node)
-    return _of_affine(value), t
+        a = polynomial(ctx, node.expr)
+        return Polynomial(_add({}, a.terms, -1) if node.op == "-" else a.terms, a.ctype, a.narrow, a.obligations)
+    value, t, obl = int_affine(ctx, node)
+    narrow = t if t.is_unsigned and obl else None  # unsigned arithmetic inside the leaf
+    return Polynomial(_of_affine(value), t, narrow, tuple(o for o in obl if type(o) is Affine))
 
 
 def _affine(p: Poly) -> Affine:

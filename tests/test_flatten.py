@@ -213,3 +213,23 @@ def test_analyze_lists_flattened_and_struct_nests(cc):
     analysable = {n["function"] for n in nests if n.get("analysable")}
     assert {"spread_rows", "settle", "layers", "shift_in_row", "mirror", "two_ld", "spread_wide", "basin_depth",
             "tide_step"} <= analysable
+
+
+def test_apply_versions_a_flattened_nest_and_passes_the_assertion_on(cc, tmp_path):
+    src = tmp_path / "k.c"
+    src.write_text("void settle(int n, int ld, double *A) {\n"
+                   "#pragma looptile tile(i=4, j=4) order(jj, ii, i, j)\n"
+                   "    for (int i = 1; i < n; i++)\n"
+                   "        for (int j = 0; j < n; j++)\n"
+                   "            A[i*ld + j] += 0.25 * A[(i - 1)*ld + j];\n"
+                   "}\n")
+    out = tmp_path / "out"
+    r = run_cli("apply", src, "-o", out)
+    assert r.exit_code == 0, r.stderr
+    text = (out / "k.c").read_text()
+    assert "if (n <= ld) {" in text and not any(ln.startswith("#pragma") for ln in text.splitlines())
+    r = run_cli("apply", src, "--assume-in-row", "-o", tmp_path / "out2")
+    assert r.exit_code == 0, r.stderr
+    text = (tmp_path / "out2" / "k.c").read_text()
+    assert "if (n <= ld)" not in text and "asserted by the user with --assume-in-row" in text
+    assert "looptile apply" in text and "--assume-in-row" in text.split("made by:")[1]
