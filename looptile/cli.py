@@ -237,6 +237,73 @@ def _print_report(report) -> None:
         click.echo(line)
 
 
+def _parse_params(specs: tuple[str, ...]) -> dict[str, int]:
+    values: dict[str, int] = {}
+    for spec in specs:
+        for item in spec.split(","):
+            name, eq, value = item.strip().partition("=")
+            try:
+                values[name.strip()] = int(value, 0)
+            except ValueError:
+                raise UsageError(f"--params item '{item}' is not NAME=INTEGER") from None
+            if not eq or not name.strip():
+                raise UsageError(f"--params item '{item}' is not NAME=INTEGER")
+    return values
+
+
+@main.command(name="simulate")
+@click.argument("file")
+@click.option("--nest", "nest", required=True, metavar="SEL", help="L<line>, FUNC or FUNC:K.")
+@click.option("--sizes", metavar="SPEC", multiple=True, help="Tile sizes of the transformed version, as for tile.")
+@click.option("--order", metavar="LIST", help="Loop order, as for tile.")
+@click.option("--remainder", type=click.Choice(["split", "clamp"]), default=None, help="As for tile.")
+@click.option("--jam", "jam_spec", metavar="SPEC", help="As for tile.")
+@click.option("--scalarize", is_flag=True, help="As for tile.")
+@click.option("--params", "sim_params", multiple=True, metavar="n=64,m=...",
+              help="Values of the kernel's integer parameters (all of them).")
+@click.option("--cache", "caches", multiple=True, metavar="L1=48KiB/12/64",
+              help="A cache level NAME=SIZE/WAYS/LINE, innermost first (repeatable; WAYS 0: fully associative). "
+                   "Default: this machine's data caches.")
+@click.option("--only", metavar="a,b", help="Trace only these arrays (the others stay in registers or bypass the "
+                                            "cache).")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON document.")
+@reassociate_options
+@frontend_options
+@reporting
+def simulate_cmd(file: str, nest: str, sizes: tuple[str, ...], order: str | None, remainder: str | None,
+                 jam_spec: str | None, scalarize: bool, sim_params: tuple[str, ...], caches: tuple[str, ...],
+                 only: str | None, as_json: bool, **kw) -> None:
+    """Count cache hits and misses of a nest before and after a rewrite (an ideal LRU model)."""
+    from . import simulate as sim
+    from .cachegeom import machine_levels, parse_level
+    try:
+        if caches:
+            levels, note = [parse_level(c, f"L{k + 1}") for k, c in enumerate(caches)], None
+        else:
+            levels, note = machine_levels()
+        req = _tile_request(sizes, order, remainder, jam_spec, scalarize) if (sizes or order or jam_spec) else None
+        topts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), False,
+                                     _command_text(file, nest, sizes, order, remainder or "split",
+                                                   dict(kw, jam_spec=jam_spec, scalarize=scalarize)),
+                                     split_fallback=remainder is None, reassociate=tuple(kw["reassociate"]),
+                                     assume_in_row=kw["assume_in_row"])
+        params = _parse_params(sim_params)
+        opts = sim.SimulateOptions(tuple(levels), params, tuple(x.strip() for x in only.split(",")) if only else (),
+                                   progress=sys.stderr.isatty() and not as_json)
+        tu = pipeline.load(file, _flags(file, kw))
+        report = sim.simulate(tu, nest, req, topts, opts)
+    except LooptileError as exc:
+        if exc.path is None:
+            exc.path = file
+        raise
+    for n in report.notes:
+        click.echo(f"{file}: note: {n}", err=True)
+    if as_json:
+        click.echo(json.dumps(sim.as_json(report, tuple(levels), note), indent=2))
+    else:
+        click.echo(sim.as_text(report, tuple(levels), note, params))
+
+
 @main.command(name="verify")
 @click.argument("file")
 @click.option("--nest", "nest", metavar="SEL", help="Check looptile's rewrite of this nest (L<line>, FUNC, FUNC:K).")

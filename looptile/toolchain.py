@@ -172,12 +172,50 @@ def build(source: str, exe: str, flags: CompileFlags, include_dir: str) -> Build
     return Build(proc.returncode == 0, exe, proc.stderr.decode("latin-1"))
 
 
-def run(exe: str, args: list[str], timeout: float, extra_env: dict[str, str] | None = None) -> Run:
+def build_fast(source: str, exe: str, flags: CompileFlags, include_dir: str,
+               opt: tuple[str, ...] = ("-O2",)) -> Build:
+    """Compile a generated program for speed (no sanitizers): the user's flags, then ``opt``."""
+    argv = compiler() + list(flags.args) + [f"-I{include_dir}", source, "-o", exe] + list(opt) + ["-lm"]
+    try:
+        proc = subprocess.run(argv, capture_output=True, cwd=flags.directory, timeout=300, env=_c_locale())
+    except FileNotFoundError:
+        return Build(False, exe, f"cannot run the C compiler '{argv[0]}'; set CC to a C compiler")
+    except subprocess.TimeoutExpired:
+        return Build(False, exe, "the compiler timed out after 300 s")
+    return Build(proc.returncode == 0, exe, proc.stderr.decode("latin-1"))
+
+
+def run(exe: str, args: list[str], timeout: float | None, extra_env: dict[str, str] | None = None,
+        stderr_to_terminal: bool = False) -> Run:
     env = dict(os.environ, **(extra_env or {}))
     env.setdefault("ASAN_OPTIONS", "detect_leaks=0")  # needs ptrace, which containers often forbid
     env.setdefault("UBSAN_OPTIONS", "print_stacktrace=0")
     try:
-        proc = subprocess.run([exe] + args, capture_output=True, timeout=timeout, env=env)
+        proc = subprocess.run([exe] + args, stdout=subprocess.PIPE, stderr=None if stderr_to_terminal else
+                              subprocess.PIPE, timeout=timeout, env=env)
     except subprocess.TimeoutExpired as exc:
         return Run(None, exc.stdout or b"", (exc.stderr or b"").decode("latin-1"))
-    return Run(proc.returncode, proc.stdout, proc.stderr.decode("latin-1"))
+    return Run(proc.returncode, proc.stdout, (proc.stderr or b"").decode("latin-1"))
+
+
+# Timing builds (tune): the user's CFLAGS, or these when CFLAGS is not set.
+DEFAULT_TUNE_CFLAGS: tuple[str, ...] = ("-O3", "-march=native")
+
+
+def tune_cflags() -> list[str]:
+    """CFLAGS from the environment, or DEFAULT_TUNE_CFLAGS when it is unset or empty."""
+    return shlex.split(os.environ.get("CFLAGS", "")) or list(DEFAULT_TUNE_CFLAGS)
+
+
+def build_timed(sources: list[str], exe: str, flags: CompileFlags, include_dir: str, cflags: list[str],
+                timeout: float = 300) -> Build:
+    """Compile a timing driver with ``cflags`` (no checking flags: it is timed, not checked)."""
+    argv = compiler() + list(cflags) + list(flags.args) + [f"-I{include_dir}"] + sources + ["-o", exe, "-lm"]
+    try:
+        proc = subprocess.run(argv, capture_output=True, cwd=flags.directory, timeout=max(timeout, 1),
+                              env=_c_locale())
+    except FileNotFoundError:
+        return Build(False, exe, f"cannot run the C compiler '{argv[0]}'; set CC to a C compiler")
+    except subprocess.TimeoutExpired:
+        return Build(False, exe, f"the compiler timed out after {timeout:.0f} s")
+    return Build(proc.returncode == 0, exe, proc.stderr.decode("latin-1"))
