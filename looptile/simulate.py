@@ -386,6 +386,11 @@ def as_text(report: SimulateReport, levels: tuple[Level, ...], geometry_note: st
     for label, d in (("original", orig), ("transformed", new)):
         if d is None:
             continue
+        wb = ", ".join(f"{lv['name']} {lv.get('writebacks', 0)}" for lv in d["levels"])
+        lines.append(f"write-backs of dirty lines (not demand accesses), {label}: {wb}")
+    for label, d in (("original", orig), ("transformed", new)):
+        if d is None:
+            continue
         m = d["memory_bytes"]
         lines.append(f"memory traffic, {label}: {m['read']} bytes read + {m['write']} bytes written back = "
                      f"{m['total']} bytes")
