@@ -7,6 +7,7 @@
  * Interface
  *   lt_sim_init(nlevels, size[], ways[], line[], narrays)   ways 0 (or = lines): fully associative
  *   lt_sim_access(addr, array, is_write)                    one element access, array in 0..narrays-1
+ *                                                           (not checked: the caller's guarantee)
  *   lt_sim_finish()                                         flush dirty lines (end of the run)
  *   lt_sim_report(out)                                      one JSON object on one line
  *
@@ -44,8 +45,11 @@
  * Speed and memory: a level of at most LT_SIM_SMALL_WAYS ways keeps each set
  * as a small array in most-recently-used-first order (move to front); a fully
  * associative or wider level keeps a hash table plus one doubly linked LRU list
- * per set (O(1) per access).  Memory depends on the geometry only, never on the
- * length of the trace.  With LOOPTILE_PROGRESS in the environment, a progress
+ * per set (O(1) per access).  In a stretch where more than a quarter of the
+ * accesses miss L1 (decided per 1024 accesses), accesses wait in a queue of 16,
+ * in order, while the sets they need below L1 are prefetched, so that the host's
+ * memory latency overlaps; the counts do not depend on it.  Memory depends on the
+ * geometry only, never on the length of the trace.  With LOOPTILE_PROGRESS in the environment, a progress
  * line goes to stderr every 2^26 accesses and a newline at lt_sim_finish.
  */
 #ifndef LOOPTILE_CACHESIM_H
@@ -106,6 +110,13 @@ static unsigned long long lt_sim_read_bytes, lt_sim_write_bytes;
 static unsigned long long lt_sim_countdown = 1ULL << LT_SIM_PROGRESS_BITS;
 static unsigned long long lt_sim_chunks;
 static int lt_sim_progress_on, lt_sim_progress_shown;
+#define LT_SIM_AHEAD 16u         /* accesses queued while their sets are prefetched (power of two) */
+static unsigned long long lt_sim_qaddr[LT_SIM_AHEAD];
+static int lt_sim_qmeta[LT_SIM_AHEAD];   /* array * 2 + is_write; -1: empty */
+static unsigned lt_sim_qpos;
+#define LT_SIM_WINDOW 1024u
+static unsigned lt_sim_window_left = LT_SIM_WINDOW, lt_sim_window_misses;
+static int lt_sim_ahead_on;
 
 static LT_SIM_UNUSED void lt_sim_fail(const char *what)
 {
@@ -201,6 +212,12 @@ static LT_SIM_UNUSED void lt_sim_init(int nlevels, const unsigned long long *siz
     lt_sim_chunks = 0;
     lt_sim_progress_on = getenv("LOOPTILE_PROGRESS") != NULL;
     lt_sim_progress_shown = 0;
+    lt_sim_qpos = 0;
+    for (i = 0; i < LT_SIM_AHEAD; i++)
+        lt_sim_qmeta[i] = -1;
+    lt_sim_window_left = LT_SIM_WINDOW;
+    lt_sim_window_misses = 0;
+    lt_sim_ahead_on = 0;
 }
 
 static inline unsigned long long lt_sim_set(const lt_sim_level *L, unsigned long long ln)
@@ -380,6 +397,7 @@ static LT_SIM_UNUSED void lt_sim_tick(void)
 static LT_SIM_NOINLINE void lt_sim_miss(unsigned long long addr, int array, unsigned long long victim)
 {
     int k = 0;
+    lt_sim_window_misses++;
     for (;;) {
         lt_sim_level *L = &lt_sim_lv[k];
         L->arrays[array].misses++;
@@ -398,22 +416,91 @@ static LT_SIM_NOINLINE void lt_sim_miss(unsigned long long addr, int array, unsi
     }
 }
 
-static inline LT_SIM_UNUSED void lt_sim_access(unsigned long long addr, int array, int is_write)
+static inline void lt_sim_run(unsigned long long addr, int array, unsigned dirty)
 {
     lt_sim_level *L = &lt_sim_lv[0];
     unsigned long long victim;
-    if (!LT_SIM_LIKELY(--lt_sim_countdown))
-        lt_sim_tick();
     L->arrays[array].accesses++;
-    if (LT_SIM_LIKELY(lt_sim_touch(L, addr >> L->line_bits, is_write ? 1u : 0u, &victim)))
+    if (LT_SIM_LIKELY(lt_sim_touch(L, addr >> L->line_bits, dirty, &victim)))
         return;
     lt_sim_miss(addr, array, victim);
+}
+
+static void lt_sim_drain(void);
+
+/* Every LT_SIM_WINDOW accesses: queue the next window's accesses (below) when more
+ * than a quarter of this window's missed L1, else run them at once. */
+static LT_SIM_NOINLINE void lt_sim_window_end(void)
+{
+    int on = lt_sim_window_misses * 4 > LT_SIM_WINDOW;
+    lt_sim_window_left = LT_SIM_WINDOW;
+    lt_sim_window_misses = 0;
+    if (lt_sim_ahead_on && !on)
+        lt_sim_drain();
+    lt_sim_ahead_on = on;
+}
+
+/* In a miss-heavy stretch, accesses wait in a short queue (in order) while the sets
+ * they will need below L1 are prefetched, so that the host's memory latency of
+ * several misses overlaps; in a hit-heavy stretch they run at once (the prefetches
+ * would cost more than they save).  Either way the accesses are simulated in their
+ * order; lt_sim_finish drains the queue. */
+static inline LT_SIM_UNUSED void lt_sim_access(unsigned long long addr, int array, int is_write)
+{
+    unsigned p;
+    unsigned long long old;
+    int k, old_meta;
+    if (!LT_SIM_LIKELY(--lt_sim_countdown))
+        lt_sim_tick();
+    if (!LT_SIM_LIKELY(--lt_sim_window_left))
+        lt_sim_window_end();
+    if (!lt_sim_ahead_on) {
+        lt_sim_run(addr, array, is_write ? 1u : 0u);
+        return;
+    }
+#if defined(__GNUC__) || defined(__clang__)
+    for (k = 1; k < lt_sim_nlevels; k++) {
+        const lt_sim_level *L = &lt_sim_lv[k];
+        unsigned long long ln = addr >> L->line_bits;
+        if (!L->sets_pow2)
+            continue;
+        if (L->listed) {
+            __builtin_prefetch(&L->bucket[lt_sim_hash(L, ln)]);
+        } else {
+            const unsigned long long *w = L->way + (ln & L->set_mask) * L->assoc;
+            __builtin_prefetch(w);
+            __builtin_prefetch(w + L->assoc - 1);
+        }
+    }
+#else
+    (void)k;
+#endif
+    p = lt_sim_qpos;
+    old = lt_sim_qaddr[p];
+    old_meta = lt_sim_qmeta[p];
+    lt_sim_qaddr[p] = addr;
+    lt_sim_qmeta[p] = array * 2 + (is_write != 0);
+    lt_sim_qpos = (p + 1) & (LT_SIM_AHEAD - 1);
+    if (old_meta >= 0)
+        lt_sim_run(old, old_meta >> 1, (unsigned)old_meta & 1u);
+}
+
+static void lt_sim_drain(void)
+{
+    unsigned i;
+    for (i = 0; i < LT_SIM_AHEAD; i++) {
+        unsigned p = (lt_sim_qpos + i) & (LT_SIM_AHEAD - 1);
+        if (lt_sim_qmeta[p] >= 0)
+            lt_sim_run(lt_sim_qaddr[p], lt_sim_qmeta[p] >> 1, (unsigned)lt_sim_qmeta[p] & 1u);
+        lt_sim_qmeta[p] = -1;
+    }
 }
 
 static LT_SIM_UNUSED void lt_sim_finish(void)
 {
     int k;
     unsigned long long i, n;
+    lt_sim_drain();
     for (k = 0; k < lt_sim_nlevels; k++) {
         lt_sim_level *L = &lt_sim_lv[k];
         n = L->sets * L->assoc;
