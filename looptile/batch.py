@@ -18,6 +18,7 @@ from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, fields, replace
 
 from . import directives, pipeline
+from .cachegeom import machine_levels
 from .directives import Found
 from .errors import InputError, InternalError, LooptileError, Refusal, UsageError
 from .flags import CompileFlags, from_compile_db
@@ -37,6 +38,7 @@ class ApplyOptions:
     assumptions: tuple[str, ...] = ()
     check: VerifyOptions | None = None  # --verify: compile and run each rewrite first
     assume_in_row: bool = False  # --assume-in-row, for every directive
+    cache: tuple = ()  # --cache: cachegeom.Levels for tile(i=auto) (default: the machine's)
 
     def flags_for(self, path: str) -> CompileFlags:
         return from_compile_db(self.compile_db, path).plus(self.flags) if self.compile_db else self.flags
@@ -221,7 +223,7 @@ def carry_out(tu: TranslationUnit, f: Found, opts: ApplyOptions) -> _Result:
         if pipeline.select(tu, nest.selector) is not f.site:
             raise InternalError(f"selector {nest.selector} does not name the loop after the directive", path=path,
                                 line=nest.line, column=nest.column)
-        outcome = run_job(tu, nest.selector, d, topts)
+        outcome = run_job(tu, nest.selector, d, topts, opts.cache)
         lines = None
         if opts.check is not None:
             lines = _verify(tu, outcome, d, opts.check)
@@ -255,7 +257,8 @@ def _tile_takes(*names: str) -> bool:
     return set(names) <= {f.name for f in fields(TileRequest)}
 
 
-def run_job(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipeline.TileOptions):
+def run_job(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipeline.TileOptions,
+            cache: tuple = ()):
     """The job a directive asks for; what this version cannot do is refused, never silently
     ignored."""
     p = d.pragma
@@ -264,6 +267,10 @@ def run_job(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipel
                           "its nest are left as they are", **where)
     if d.tile is not None:  # tiling or a permutation, perhaps with unroll-and-jam inside the tiles
         req = d.tile
+        if d.auto is not None:
+            from .autosize import AutoSizing
+            topts = replace(topts, autosize=AutoSizing(d.auto, tuple(cache or machine_levels()[0]),
+                                                       named="tile(...)"))
         if d.levels:
             if not _tile_takes("levels"):
                 line, col = tu.source.line_col(d.level_offset or p.offset)
@@ -298,6 +305,8 @@ def run_job(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipel
 def _verify(tu: TranslationUnit, outcome, d: directives.Directive, check: VerifyOptions) -> tuple[str, ...]:
     sizes = tuple(s for _, s in d.tile.sizes) if d.tile is not None else ()
     sizes += tuple(s for level in d.levels for _, s in level)
+    if d.auto is not None:  # the sizes the cache model chose
+        sizes = tuple(outcome.plan.sizes) + tuple(s for level in outcome.plan.levels for _, s in level)
     sizes += tuple(u for _, u in d.jam.factors) if d.jam is not None else ()
     sizes += (d.unroll.factor,) if d.unroll is not None and d.unroll.factor is not None else ()
     nest = outcome.nest

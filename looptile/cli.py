@@ -9,9 +9,11 @@ from __future__ import annotations
 import functools
 import json
 import os
+import re
 import shlex
 import sys
 import traceback
+from dataclasses import replace
 
 import click
 
@@ -127,9 +129,59 @@ def _parse_sizes(spec: str | None) -> tuple[tuple[str | None, int], ...]:
         try:
             n = int(value)
         except ValueError:
+            if value.strip() == "auto":
+                raise UsageError("--sizes auto (sizes chosen by the cache model) is for tile, in one --sizes; here "
+                                 "give the sizes (the guard comment of an auto-tiled nest records them)") from None
             raise UsageError(f"--sizes item '{item}' is not NAME=SIZE or SIZE with an integer size") from None
         out.append((name.strip() if name else None, n))
     return tuple(out)
+
+
+_AUTO = re.compile(r"(?:^|[=,])\s*auto\s*(?:,|$)")
+
+
+def _auto_sizing(sizes: tuple[str, ...], cache: tuple[str, ...], explain: bool, kw: dict):
+    """``--sizes auto`` (``i=auto,j=32``...) with --cache and --params: the AutoSizing, and why the
+    fallback geometry is used (None when given or read); (None, None) without auto."""
+    from .autosize import AutoSizing
+    from .cachegeom import machine_levels, parse_level
+    if not any(_AUTO.search(spec) for spec in sizes):
+        if cache or explain:
+            raise UsageError("--cache and --explain go with --sizes auto (sizes chosen by the cache model)")
+        return None, None
+    if len(sizes) > 1:
+        raise UsageError("--sizes auto chooses every level of tiles (two with two cache levels); give one --sizes")
+    items = []
+    for item in sizes[0].split(","):
+        name, eq, value = item.strip().partition("=")
+        if not eq:
+            name, value = "", name
+        if value.strip() == "auto":
+            items.append((name.strip() or None, None))
+            continue
+        try:
+            items.append((name.strip() or None, int(value)))
+        except ValueError:
+            raise UsageError(f"--sizes item '{item.strip()}' is not NAME=SIZE, NAME=auto, SIZE or auto") from None
+    why = None
+    if cache:
+        levels = sorted((parse_level(c, f"L{k + 1}") for k, c in enumerate(cache)), key=lambda lv: lv.size)
+    else:
+        levels, why = machine_levels()
+    bounds: dict[str, int] = {}
+    for values in _verify_options(kw, ()).params:  # the largest value of each parameter bounds the trip counts
+        for name, v in values.items():
+            bounds[name] = max(v, bounds.get(name, v))
+    return AutoSizing(() if items == [(None, None)] else tuple(items), tuple(levels),
+                      tuple(sorted(bounds.items()))), why
+
+
+def _auto_words(auto) -> str:
+    """What the guard's made-by command adds for --sizes auto: the geometry used and --params."""
+    parts = [a for lv in auto.levels for a in ("--cache", lv.spec())]
+    if auto.params:
+        parts += ["--params", ",".join(f"{k}={v}" for k, v in auto.params)]
+    return " " + " ".join(shlex.quote(p) for p in parts)
 
 
 def _tile_request(sizes: tuple[str, ...], order: str | None, remainder: str | None, jam_spec: str | None,
@@ -358,7 +410,11 @@ def verify_cmd(file: str, nest: str | None, sizes: tuple[str, ...], order: str |
 @click.argument("file")
 @click.option("--nest", "nest", required=True, metavar="SEL", help="L<line>, FUNC or FUNC:K.")
 @click.option("--sizes", metavar="SPEC", multiple=True,
-              help="Tile sizes: i=32,j=32 or 32,32 (outermost loops). Repeat for more levels, outermost first.")
+              help="Tile sizes: i=32,j=32 or 32,32 (outermost loops). Repeat for more levels, outermost first. "
+                   "'auto' (or i=auto,j=32): chosen from the cache geometry.")
+@click.option("--cache", "cache", multiple=True, metavar="L1=48KiB/12/64",
+              help="With --sizes auto: a cache level SIZE/WAYS/LINE (repeatable; default: this machine's).")
+@click.option("--explain", is_flag=True, help="With --sizes auto: print how the sizes were chosen (stderr).")
 @click.option("--order", metavar="LIST", help="New loop order, e.g. ii,kk,jj,i,k,j (ii or i.1 = tile loop of i).")
 @click.option("--remainder", type=click.Choice(["split", "clamp"]), default=None,
               help="split (default): fast path for whole tiles; clamp: min-style bounds only.")
@@ -382,30 +438,42 @@ def verify_cmd(file: str, nest: str | None, sizes: tuple[str, ...], order: str |
 @check_options
 @frontend_options
 @reporting
-def tile(file: str, nest: str, sizes: tuple[str, ...], order: str | None, remainder: str, as_diff: bool,
-         output: str | None, in_place: bool, force: bool, check: bool, jam_spec: str | None, scalarize: bool,
-         parallel: bool, check_overlap: bool, **kw) -> None:
+def tile(file: str, nest: str, sizes: tuple[str, ...], cache: tuple[str, ...], explain: bool, order: str | None,
+         remainder: str, as_diff: bool, output: str | None, in_place: bool, force: bool, check: bool,
+         jam_spec: str | None, scalarize: bool, parallel: bool, check_overlap: bool, **kw) -> None:
     """Strip-mine a band of loops and move the tile loops outward, if the analysis proves it legal."""
     try:
         if sum([as_diff, bool(output), in_place]) > 1:
             raise UsageError("choose one of --diff, -o OUT and --in-place")
-        req = _tile_request(sizes, order, remainder, jam_spec, scalarize)
+        auto, fallback = _auto_sizing(sizes, cache, explain, kw)
+        req = _tile_request(() if auto else sizes, order, remainder, jam_spec, scalarize)
+        command = _command_text(file, nest, sizes, order, remainder or "split",
+                                dict(kw, jam_spec=jam_spec, scalarize=scalarize, parallel=parallel,
+                                     check_overlap=check_overlap))
         opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), force,
-                                    _command_text(file, nest, sizes, order, remainder or "split",
-                                                  dict(kw, jam_spec=jam_spec, scalarize=scalarize,
-                                                       parallel=parallel, check_overlap=check_overlap)),
+                                    command + (_auto_words(auto) if auto else ""),
                                     split_fallback=remainder is None, reassociate=tuple(kw["reassociate"]),
                                     parallel=parallel, assume_in_row=kw["assume_in_row"],
-                                    check_overlap=check_overlap)
+                                    check_overlap=check_overlap, autosize=auto)
         tu = pipeline.load(file, _flags(file, kw))
         outcome = pipeline.tile(tu, nest, req, opts)
+        swept = _all_sizes(req) if not auto else _all_sizes(replace(req, sizes=tuple(zip(outcome.plan.band,
+                                                                                outcome.plan.sizes)),
+                                                                    levels=outcome.plan.levels))
         report = verify(tu, outcome.new, outcome.nest.function,
-                        _verify_options(dict(kw, check_overlap=check_overlap), _all_sizes(req),
+                        _verify_options(dict(kw, check_overlap=check_overlap), swept,
                                         outcome.reassociated)) if check else None
     except LooptileError as exc:
         if exc.path is None:  # a usage error about this file's request: say which file
             exc.path = file
         raise
+    where = f"{file}:{outcome.nest.line}:{outcome.nest.col}"
+    if fallback:
+        click.echo(f"{where}: note: {fallback}", err=True)
+    if explain:
+        click.echo(f"{where}: note: tile sizes chosen by the cache model:", err=True)
+        for line in outcome.explanation:
+            click.echo(f"  {line}", err=True)
     _deliver(file, outcome, report, as_diff, output, in_place)
 
 
@@ -565,14 +633,17 @@ def unroll(file: str, nest: str, factor: str | None, full: bool, as_diff: bool, 
 @click.option("--report", "report_path", metavar="FILE.json", help="Write the outcome of every directive as JSON.")
 @click.option("--verify", "check", is_flag=True,
               help="Compile and run each rewrite against the original first (as verify); a difference refuses it.")
+@click.option("--cache", "cache", multiple=True, metavar="L1=48KiB/12/64",
+              help="For tile(i=auto) directives: a cache level SIZE/WAYS/LINE (repeatable; default: this machine's).")
 @check_options
 @frontend_options
 @reporting
 def apply_cmd(paths: tuple[str, ...], as_diff: bool, outdir: str | None, in_place: bool, jobs: int | None,
-              report_path: str | None, check: bool, **kw) -> None:
+              report_path: str | None, check: bool, cache: tuple[str, ...], **kw) -> None:
     """Carry out the loop-transformation directives (#pragma omp tile/unroll, #pragma looptile) in
     the files and directories given (recursively, .c files); refused ones are left as they are."""
     from . import batch
+    from .cachegeom import parse_level
     if sum([as_diff, bool(outdir), in_place]) > 1:
         raise UsageError("choose one of --diff, -o OUTDIR and --in-place")
     base = batch.common_base(list(paths))
@@ -584,7 +655,9 @@ def apply_cmd(paths: tuple[str, ...], as_diff: bool, outdir: str | None, in_plac
     opts = batch.ApplyOptions(from_options(kw["includes"], kw["isystem"], kw["defines"], kw["undefines"],
                                            kw["include_files"], kw["std"]), kw.get("compile_db"),
                               frozenset(kw["assume_pure"]), tuple(kw["assumptions"]),
-                              _verify_options(kw, ()) if check else None, kw["assume_in_row"])
+                              _verify_options(kw, ()) if check else None, kw["assume_in_row"],
+                              tuple(sorted((parse_level(c, f"L{k + 1}") for k, c in enumerate(cache)),
+                                           key=lambda lv: lv.size)))
     if sys.stderr.isatty() and len(files) >= 8:
         with click.progressbar(length=len(files), label="looptile apply", file=sys.stderr) as bar:
             outcomes = batch.run(files, opts, jobs or batch.default_jobs(), lambda o: bar.update(1))
@@ -611,6 +684,136 @@ def apply_cmd(paths: tuple[str, ...], as_diff: bool, outdir: str | None, in_plac
         write_atomic(report_path, (json.dumps(batch.report_json(outcomes), indent=2) + "\n").encode())
     click.echo(batch.summary_table(outcomes), err=as_diff)
     sys.exit(batch.exit_status(batch.totals(outcomes)))
+
+
+def _int_list(spec: str, option: str) -> tuple[int, ...]:
+    try:
+        out = tuple(int(x) for x in spec.split(",") if x.strip())
+    except ValueError:
+        raise UsageError(f"{option} '{spec}' is not a list of integers (e.g. 16,32,64)") from None
+    if not out or min(out) < 1:
+        raise UsageError(f"{option} '{spec}' needs at least one size, each at least 1")
+    return out
+
+
+def _jam_list(spec: str) -> tuple[tuple[int, ...], ...]:
+    """--jam-candidates 2,4 (one jammed loop) or 4x4,6x8 (factors of the outermost jammable loops)."""
+    try:
+        out = tuple(tuple(int(f) for f in item.strip().split("x")) for item in spec.split(",") if item.strip())
+    except ValueError:
+        raise UsageError(f"--jam-candidates '{spec}' is not a list of factors such as 2,4 or 4x4,6x8") from None
+    if not out or any(f < 1 for fs in out for f in fs):
+        raise UsageError(f"--jam-candidates '{spec}' needs factors of at least 1")
+    return out
+
+
+def _seconds(spec: str) -> float:
+    text = spec.strip().lower()
+    scale = 60.0 if text.endswith("m") else 1.0
+    try:
+        value = float(text.rstrip("sm")) * scale
+    except ValueError:
+        value = -1.0
+    if value <= 0:
+        raise UsageError(f"--budget '{spec}' is not a duration such as 120s, 90 or 5m")
+    return value
+
+
+@main.command(name="tune")
+@click.argument("file")
+@click.option("--nest", "nest", required=True, metavar="SEL", help="L<line>, FUNC or FUNC:K.")
+@click.option("--params", "params", multiple=True, required=True, metavar="n=1000",
+              help="Values of the kernel's integer parameters for the timing runs (repeatable, merged).")
+@click.option("--band", metavar="LIST", help="Loops to tile, e.g. i,j,k (default: the longest permutable band).")
+@click.option("--candidates", metavar="SIZES", help="Tile sizes of the grid (default 16,32,64,128,256; sizes "
+              "not below a loop's trip count are dropped).")
+@click.option("--jam-candidates", "jam_candidates", metavar="LIST",
+              help="Unroll-and-jam factors: 2,4 (one loop) or 4x4,6x8 (the outermost jammable loops).")
+@click.option("--budget", default="120s", show_default=True, metavar="TIME",
+              help="Wall time for the whole job (generating, compiling, timing, verifying the winner).")
+@click.option("--jobs", "-j", "jobs", type=click.IntRange(min=1), default=None,
+              help="Compiler runs in parallel (default: the number of cores); timing is always serial.")
+@click.option("--plot", "plot_path", metavar="FILE.png", help="Write a PNG (needs matplotlib: looptile[plot]).")
+@click.option("--json", "as_json", is_flag=True, help="Print the results as one JSON document.")
+@click.option("--runs", type=click.IntRange(min=1), default=5, show_default=True,
+              help="Timed calls per variant after a warm-up (fewer when calls are slow); the median is kept.")
+@click.option("--order", metavar="LIST", help="Loop order of every variant, as for tile.")
+@click.option("--cflags", metavar="FLAGS", help="Compiler flags of the timing builds (default: $CFLAGS, else "
+              "-O3 -march=native).")
+@click.option("--cflags-variant", "cflags_variants", multiple=True, metavar="FLAGS",
+              help="Also build each unroll-and-jam variant with FLAGS added (repeatable), e.g. "
+                   "-fno-tree-loop-vectorize.")
+@click.option("--min-gain", "min_gain", type=click.FloatRange(0, 0.9), default=0.05, show_default=True,
+              help="How much faster than the original a variant must be to be chosen (0.05: 5%).")
+@click.option("--max-grid", "max_grid", type=click.IntRange(min=1), default=12, show_default=True,
+              help="Tile-size combinations in the grid.")
+@click.option("--shape", "shapes", multiple=True, metavar="A=n*m",
+              help="Element count of a pointer parameter, as a C expression of the parameters.")
+@click.option("--reassociate", "reassociate", multiple=True, metavar="NAME",
+              help="As for tile: allow reordering the additions into NAME.")
+@frontend_options
+@reporting
+def tune_cmd(file: str, nest: str, params: tuple[str, ...], band: str | None, candidates: str | None,
+             jam_candidates: str | None, budget: str, jobs: int | None, plot_path: str | None, as_json: bool,
+             runs: int, order: str | None, cflags: str | None, cflags_variants: tuple[str, ...], min_gain: float,
+             max_grid: int, **kw) -> None:
+    """Time tiled variants of a nest on this machine and report the fastest (verified) one."""
+    from . import toolchain, tune, tune_report
+    try:
+        values = _verify_options(dict(kw, params=params, shapes=kw["shapes"], seed=0, timeout=1.0), ()).params
+        merged = {k: v for d in values for k, v in d.items()}
+        shapes = _verify_options(dict(kw, params=(), seed=0, timeout=1.0), ()).shapes
+        if plot_path:
+            try:
+                import matplotlib  # noqa: F401
+            except ImportError:
+                raise UsageError("--plot needs matplotlib: pip install 'looptile[plot]' (or pip install "
+                                 "matplotlib)") from None
+        order_t = tuple(x.strip() for x in order.split(",")) if order else None
+        base = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), False, "",
+                                    reassociate=tuple(kw["reassociate"]), assume_in_row=kw["assume_in_row"])
+        opts = tune.TuneOptions(
+            merged, tuple(x.strip() for x in band.split(",")) if band else None,
+            _int_list(candidates, "--candidates") if candidates else tune.DEFAULT_CANDIDATES,
+            _jam_list(jam_candidates) if jam_candidates else None, _seconds(budget),
+            jobs or os.cpu_count() or 1, runs, order_t,
+            tuple(shlex.split(cflags)) if cflags is not None else tuple(toolchain.tune_cflags()),
+            max_grid, min_gain=min_gain, tile=base, shapes=shapes,
+            cflags_variants=tuple(tuple(shlex.split(f)) for f in cflags_variants if f.strip()))
+
+        def command_of(cfg) -> str:
+            return _command_text(file, nest, cfg.size_specs, order, "split",
+                                 dict(kw, jam_spec=cfg.jam_spec, scalarize=cfg.scalarize))
+
+        tu = pipeline.load(file, _flags(file, kw))
+        if sys.stderr.isatty() and not kw.get("debug"):
+            with click.progressbar(length=int(opts.budget), label="looptile tune", file=sys.stderr,
+                                   show_percent=False, show_pos=False) as bar:
+                start = [0.0]
+
+                def progress(msg: str) -> None:
+                    import time as _time
+                    now = _time.monotonic()
+                    start[0] = start[0] or now
+                    bar.update(max(0, min(int(now - start[0]), bar.length) - bar.pos))
+                    bar.label = f"looptile tune: {msg[:40]:40}"
+                result = tune.run(tu, nest, opts, command_of, progress)
+        else:
+            result = tune.run(tu, nest, opts, command_of)
+        drawn = tune_report.plot(result, plot_path) if plot_path else None
+    except LooptileError as exc:
+        if exc.path is None:
+            exc.path = file
+        raise
+    if as_json:
+        doc = tune_report.as_json(result)
+        doc["plot"] = {"path": plot_path, "kind": drawn} if plot_path else None
+        click.echo(json.dumps(doc, indent=2))
+    else:
+        for line in tune_report.table(result) + [""] + tune_report.summary(result):
+            click.echo(line)
+        if plot_path:
+            click.echo(f"plot: {plot_path} ({drawn})")
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -77,6 +77,8 @@ class Directive:
     size_macros: tuple[tuple[str, int], ...] = ()  # sizes written as macros, with the values used
     levels: tuple[tuple[tuple[str, int], ...], ...] = ()  # tile(...) clauses after the first: levels 2, 3, ...
     level_offset: int | None = None  # where the second tile(...) clause is written
+    # tile(i=auto, j=32): the clause's items, None for a size chosen from the cache geometry (autosize.py)
+    auto: tuple[tuple[str, int | None], ...] | None = None
 
 
 @dataclass(frozen=True)
@@ -217,6 +219,7 @@ class _Parser:
         self.toks, self.src, self.end, self.macros = toks, src, end, macros
         self.k = 0
         self.used_macros: list[tuple[str, int]] = []
+        self.auto_at: _Tok | None = None  # the first 'auto' size of a tile(...) clause
 
     def peek(self) -> _Tok | None:
         return self.toks[self.k] if self.k < len(self.toks) else None
@@ -284,9 +287,14 @@ class _Parser:
         return value
 
     def macro_value(self, name: _Tok, what: str) -> int:
+        if name.text == "auto" and what.startswith("sizes(...)"):
+            raise self.refuse(f"{what} 'auto' is not an integer constant, and the OpenMP sizes clause takes "
+                              "positive integer constant expressions (OpenMP 5.1, section 2.11.9.1, from memory); "
+                              "for sizes chosen by looptile from the cache geometry write "
+                              "'#pragma looptile tile(i=auto, ...)'", name)
         if name.text == "auto":
-            raise self.refuse(f"{what} 'auto' (sizes chosen by looptile) is not available in this version; "
-                              "write a number", name)
+            raise self.refuse(f"{what} 'auto': only tile sizes are chosen by looptile (tile(i=auto)); write a "
+                              "number", name)
         text, seen = name.text, []
         while text in self.macros and len(seen) < 16:
             seen.append(text)
@@ -307,7 +315,9 @@ class _Parser:
         raise self.refuse(f"{what} '{name.text}' is not an integer constant (it is not a macro with a known value, "
                           "so it could be any value at run time); write a number or an integer macro", name)
 
-    def named_sizes(self, clause: _Tok, items: list[list[_Tok]], what: str) -> tuple[tuple[str, int], ...]:
+    def named_sizes(self, clause: _Tok, items: list[list[_Tok]], what: str,
+                    allow_auto: bool = False) -> tuple[tuple[str, int], ...]:
+        """NAME=VALUE items; with ``allow_auto``, NAME=auto gives the size None (chosen by looptile)."""
         out: list[tuple[str, int]] = []
         for item in items:
             if len(item) < 3 or item[0].kind != "id" or item[1].text != "=":
@@ -315,6 +325,10 @@ class _Parser:
                                  f"not '{self.spelled(item)}'", item[0])
             if any(n == item[0].text for n, _ in out):
                 raise self.error(f"loop '{item[0].text}' is named twice in '{clause.text}(...)'", item[0])
+            if allow_auto and len(item) == 3 and item[2].text == "auto":
+                out.append((item[0].text, None))  # type: ignore[arg-type]
+                self.auto_at = self.auto_at if self.auto_at is not None else item[2]
+                continue
             out.append((item[0].text, self.size(item[2:], f"the {what} of '{item[0].text}'")))
         return tuple(out)
 
@@ -386,7 +400,7 @@ def _looptile(p: Pragma, parser: _Parser) -> Directive:
         elif items is None:
             raise parser.error(f"'{name.text}' needs a parenthesised list, e.g. {_EXAMPLE[name.text]}", name)
         elif name.text == "tile":
-            levels.append(parser.named_sizes(name, items, "tile size"))
+            levels.append(parser.named_sizes(name, items, "tile size", allow_auto=True))
         elif name.text == "jam":
             jam = JamDirective(parser.named_sizes(name, items, "unroll factor"))
         elif name.text == "order":
@@ -403,9 +417,15 @@ def _looptile(p: Pragma, parser: _Parser) -> Directive:
     if jam is not None and order is not None and not levels:
         raise parser.error("jam(...) with order(...) jams inside tiles, so it needs tile(...); without tiles give "
                            "jam(...) alone", seen["jam"])
+    auto = None
+    if parser.auto_at is not None:  # tile(i=auto, j=32): the sizes are chosen when the directive is carried out
+        if len(levels) > 1:
+            raise parser.error("'auto' chooses every level of tiles from the cache geometry; give one tile(...) "
+                               "clause with it", parser.auto_at)
+        auto, levels = levels[0], [()]
     tile = TileRequest(levels[0] if levels else (), order, remainder or "split") if levels or order else None
     return Directive(p, tile, remainder is None, jam, None, "scalarize" in seen, tuple(parser.used_macros),
-                     tuple(levels[1:]), tiles[1].offset if len(tiles) > 1 else None)
+                     tuple(levels[1:]), tiles[1].offset if len(tiles) > 1 else None, auto)
 
 
 _EXAMPLE = {"tile": "tile(i=32, j=32)", "jam": "jam(i=4)", "order": "order(ii, jj, i, j)",

@@ -46,6 +46,7 @@ class TileOptions:
     check_overlap: bool = False
     reassociate: tuple[str, ...] = ()  # --reassociate NAME: accumulations whose additions may be reordered
     parallel: bool = False  # --parallel: mark the outermost loop that carries no dependence (pragmas.py)
+    autosize: object | None = None  # autosize.AutoSizing: sizes chosen by the cache model (--sizes auto)
 
 
 @dataclass(frozen=True)
@@ -57,6 +58,7 @@ class TileOutcome:
     plan: TilePlan
     notes: tuple[str, ...] = field(default=())
     reassociated: tuple[str, ...] = ()  # floating-point accumulations the rewrite reorders (verify's tolerance)
+    explanation: tuple[str, ...] = ()  # how the cache model chose the sizes (--sizes auto)
 
 
 def load(path: str, flags: CompileFlags) -> TranslationUnit:
@@ -387,6 +389,11 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
     _check_not_rewritten(tu, site, opts)
     nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive, opts.assume_in_row,
                              opts.reassociate, keep_pragmas=True)
+    explanation: tuple[str, ...] = ()
+    if opts.autosize is not None:  # numbers before planning: the legality test runs on them as on any others
+        from . import autosize
+        req, choice, words = autosize.resolve(nest, analysis, req, opts.autosize)
+        opts, explanation = replace(opts, command=f"{opts.command} ({words})"), tuple(choice.explanation)
     rows_checked = in_row_checks(tu, nest, analysis, opts)
     ov = overlap.overlap_check(tu, nest, analysis) if opts.check_overlap else None
     overlap_checked = [ov.condition] if ov is not None else []
@@ -469,7 +476,7 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
     if opts.assume_in_row and analysis.in_row_failing:
         notes.append("assumed (--assume-in-row): " + "; ".join(sorted({o.what for o in analysis.in_row_failing})))
     return TileOutcome(src.path, src.data, new, nest, plan, tuple(notes),
-                       reduction.floating(analysis.reassociation, legality.reordered))
+                       reduction.floating(analysis.reassociation, legality.reordered), explanation)
 
 
 def directive_removal(tu: TranslationUnit, directive: int | None) -> list[Edit]:

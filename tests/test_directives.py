@@ -128,7 +128,9 @@ BAD = [
     ("#pragma omp tile sizes(4, WIDTH)", "refused", "WIDTH", "'WIDTH' is a macro whose value '(n)' is not an "
      "integer constant"),
     ("#pragma omp tile sizes(2 * 8)", "refused", "2 * 8", "'2 * 8' is not an integer constant"),
-    ("#pragma looptile tile(i=auto)", "refused", "auto", "'auto' (sizes chosen by looptile) is not available"),
+    ("#pragma omp tile sizes(auto)", "refused", "auto", "sizes(...) item 1 'auto' is not an integer constant, and "
+     "the OpenMP sizes clause takes positive integer constant expressions"),
+    ("#pragma looptile jam(i=auto)", "refused", "auto", "'auto': only tile sizes are chosen by looptile"),
     ("#pragma omp interchange permutation(2, 1)", "refused", "#pragma", "'#pragma omp interchange' (OpenMP 6.0) "
      "is not read by this version"),
 ]
