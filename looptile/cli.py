@@ -259,18 +259,7 @@ def reassociate_options(f):
 
 
 def _verify_options(kw: dict, tile_sizes: tuple[int, ...], reassociated: tuple[str, ...] = ()) -> VerifyOptions:
-    sets = []
-    for spec in kw["params"]:
-        values = {}
-        for item in spec.split(","):
-            name, eq, value = item.strip().partition("=")
-            try:
-                values[name.strip()] = int(value, 0)
-            except ValueError:
-                raise UsageError(f"--params item '{item}' is not NAME=INTEGER") from None
-            if not eq or not name.strip():
-                raise UsageError(f"--params item '{item}' is not NAME=INTEGER")
-        sets.append(values)
+    sets = [_param_set(spec) for spec in kw["params"]]
     shapes = {}
     for item in kw["shapes"]:
         name, eq, expr = item.partition("=")
@@ -289,17 +278,25 @@ def _print_report(report) -> None:
         click.echo(line)
 
 
+def _param_set(spec: str) -> dict[str, int]:
+    """``n=64,m=48`` to values; a usage error names the item that is not NAME=INTEGER."""
+    values: dict[str, int] = {}
+    for item in spec.split(","):
+        name, eq, value = item.strip().partition("=")
+        try:
+            values[name.strip()] = int(value, 0)
+        except ValueError:
+            raise UsageError(f"--params item '{item}' is not NAME=INTEGER") from None
+        if not eq or not name.strip():
+            raise UsageError(f"--params item '{item}' is not NAME=INTEGER")
+    return values
+
+
 def _parse_params(specs: tuple[str, ...]) -> dict[str, int]:
+    """Repeated --params merged into one set of values."""
     values: dict[str, int] = {}
     for spec in specs:
-        for item in spec.split(","):
-            name, eq, value = item.strip().partition("=")
-            try:
-                values[name.strip()] = int(value, 0)
-            except ValueError:
-                raise UsageError(f"--params item '{item}' is not NAME=INTEGER") from None
-            if not eq or not name.strip():
-                raise UsageError(f"--params item '{item}' is not NAME=INTEGER")
+        values.update(_param_set(spec))
     return values
 
 

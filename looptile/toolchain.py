@@ -163,12 +163,17 @@ def build(source: str, exe: str, flags: CompileFlags, include_dir: str) -> Build
     """Compile a harness with the user's CFLAGS and flags, then the checking flags."""
     argv = compiler() + shlex.split(os.environ.get("CFLAGS", "")) + list(flags.args) + \
         [f"-I{include_dir}", source, "-o", exe] + list(CHECK_FLAGS) + ["-lm"]
+    return _compile(argv, exe, flags)
+
+
+def _compile(argv: list[str], exe: str, flags: CompileFlags, timeout: float = 300) -> Build:
     try:
-        proc = subprocess.run(argv, capture_output=True, cwd=flags.directory, timeout=300, env=_c_locale())
+        proc = subprocess.run(argv, capture_output=True, cwd=flags.directory, timeout=max(timeout, 1),
+                              env=_c_locale())
     except FileNotFoundError:
         return Build(False, exe, f"cannot run the C compiler '{argv[0]}'; set CC to a C compiler")
     except subprocess.TimeoutExpired:
-        return Build(False, exe, "the compiler timed out after 300 s")
+        return Build(False, exe, f"the compiler timed out after {timeout:.0f} s")
     return Build(proc.returncode == 0, exe, proc.stderr.decode("latin-1"))
 
 
@@ -176,13 +181,7 @@ def build_fast(source: str, exe: str, flags: CompileFlags, include_dir: str,
                opt: tuple[str, ...] = ("-O2",)) -> Build:
     """Compile a generated program for speed (no sanitizers): the user's flags, then ``opt``."""
     argv = compiler() + list(flags.args) + [f"-I{include_dir}", source, "-o", exe] + list(opt) + ["-lm"]
-    try:
-        proc = subprocess.run(argv, capture_output=True, cwd=flags.directory, timeout=300, env=_c_locale())
-    except FileNotFoundError:
-        return Build(False, exe, f"cannot run the C compiler '{argv[0]}'; set CC to a C compiler")
-    except subprocess.TimeoutExpired:
-        return Build(False, exe, "the compiler timed out after 300 s")
-    return Build(proc.returncode == 0, exe, proc.stderr.decode("latin-1"))
+    return _compile(argv, exe, flags)
 
 
 def run(exe: str, args: list[str], timeout: float | None, extra_env: dict[str, str] | None = None,
@@ -211,11 +210,4 @@ def build_timed(sources: list[str], exe: str, flags: CompileFlags, include_dir: 
                 timeout: float = 300) -> Build:
     """Compile a timing driver with ``cflags`` (no checking flags: it is timed, not checked)."""
     argv = compiler() + list(cflags) + list(flags.args) + [f"-I{include_dir}"] + sources + ["-o", exe, "-lm"]
-    try:
-        proc = subprocess.run(argv, capture_output=True, cwd=flags.directory, timeout=max(timeout, 1),
-                              env=_c_locale())
-    except FileNotFoundError:
-        return Build(False, exe, f"cannot run the C compiler '{argv[0]}'; set CC to a C compiler")
-    except subprocess.TimeoutExpired:
-        return Build(False, exe, f"the compiler timed out after {timeout:.0f} s")
-    return Build(proc.returncode == 0, exe, proc.stderr.decode("latin-1"))
+    return _compile(argv, exe, flags, timeout)
