@@ -330,12 +330,17 @@ def simulate_cmd(file: str, nest: str, sizes: tuple[str, ...], order: str | None
             levels, note = [parse_level(c, f"L{k + 1}") for k, c in enumerate(caches)], None
         else:
             levels, note = machine_levels()
-        req = _tile_request(sizes, order, remainder, jam_spec, scalarize) if (sizes or order or jam_spec) else None
+        # --sizes auto: sized by the cache model for the simulated geometry and --params
+        auto = None
+        if any(_AUTO.search(spec) for spec in sizes):
+            auto, _ = _auto_sizing(sizes, caches, False, dict(kw, params=sim_params, shapes=(), seed=0, timeout=1.0))
+        req = _tile_request(() if auto else sizes, order, remainder, jam_spec, scalarize) \
+            if (sizes or order or jam_spec) else None
         topts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), False,
                                      _command_text(file, nest, sizes, order, remainder or "split",
                                                    dict(kw, jam_spec=jam_spec, scalarize=scalarize)),
                                      split_fallback=remainder is None, reassociate=tuple(kw["reassociate"]),
-                                     assume_in_row=kw["assume_in_row"])
+                                     assume_in_row=kw["assume_in_row"], autosize=auto)
         params = _parse_params(sim_params)
         opts = sim.SimulateOptions(tuple(levels), params, tuple(x.strip() for x in only.split(",")) if only else (),
                                    progress=sys.stderr.isatty() and not as_json)
