@@ -56,11 +56,7 @@ def unroll_full(tu: TranslationUnit, sel: str, opts: TileOptions) -> JamOutcome:
     """Full unrolling of the selected loop, whose trip count must be a constant: one copy of
     its body per iteration, in order, and no loop (OpenMP's ``unroll full``)."""
     src = tu.source
-    site = select(tu, sel)
-    _check_not_rewritten(tu, site, opts)
-    nest, _analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive,
-                              reassociate=opts.reassociate, assume_in_row=opts.assume_in_row)
-    in_row_checks(tu, nest, _analysis, opts, versioning=False)
+    nest, _analysis = _analysed(tu, sel, opts)
     lp = nest.perfect[0]
     where = dict(path=nest.path, line=lp.line, column=lp.col, source_line=src.line_text(lp.line))
     names = sorted(lp.start.value.names() | lp.limit.value.names())
@@ -120,13 +116,20 @@ def _next_value(lp, values: list[int]) -> int:
     return values[-1] + lp.step * lp.direction if values else lp.start.value.const
 
 
-def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan, scalarize: bool = False) -> JamOutcome:
-    src = tu.source
+def _analysed(tu: TranslationUnit, sel: str, opts: TileOptions):
+    """The selected nest and its analysis, with the checks every job of this module needs (these
+    jobs do not version a nest, so flattened subscripts need the in-row proof or the assertion)."""
     site = select(tu, sel)
     _check_not_rewritten(tu, site, opts)
     nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive,
                              reassociate=opts.reassociate, assume_in_row=opts.assume_in_row)
     in_row_checks(tu, nest, analysis, opts, versioning=False)
+    return nest, analysis
+
+
+def _job(tu: TranslationUnit, sel: str, opts: TileOptions, make_plan, scalarize: bool = False) -> JamOutcome:
+    src = tu.source
+    nest, analysis = _analysed(tu, sel, opts)
     plan: JamPlan = make_plan(nest)
     if scalarize:
         plan = replace(plan, scalarize=True)
