@@ -454,12 +454,20 @@ def _contiguous(reused: list[Group], band: tuple[str, ...], line: int) -> dict[s
 
 
 def choose(nest: Nest, analysis, band: tuple[str, ...], levels: list[Level],
-           params: dict[str, int] | None = None, fixed: dict[str, int] | None = None) -> Choice:
+           params: dict[str, int] | None = None, fixed: dict[str, int] | None = None,
+           multiples: dict[str, int] | None = None, block: dict[str, int] | None = None) -> Choice:
     """Tile sizes for ``band`` (consecutive perfectly nested loops of ``nest``) from the cache
     ``levels`` (innermost first); ``params`` bound the sizes by the trip counts and give the row
-    lengths for the conflict test; ``fixed`` sizes are kept as given."""
+    lengths for the conflict test; ``fixed`` sizes are kept as given; ``multiples`` (jam factors)
+    are what the innermost sizes of their loops must be multiples of; ``block`` is a register block
+    of accumulators (``--jam auto``): its loops' innermost tiles are the block itself, so the
+    first level sizes the other loops (the reduction's run) around it, and a level whose sizes of
+    those loops equal the block's is not emitted (the jammed point loop covers it)."""
     params = dict(params or {})
     fixed = dict(fixed or {})
+    block = {x: u for x, u in (block or {}).items() if x in band and x not in fixed}
+    multiples = {x: u for x, u in (multiples or {}).items() if x in band and x not in fixed and x not in block
+                 and u > 1}
     if not band:
         raise UsageError("sizes chosen by the cache model need a band of loops to tile")
     if not levels:
@@ -516,6 +524,16 @@ def choose(nest: Nest, analysis, band: tuple[str, ...], levels: list[Level],
     inner_lv = _Level(use[0], reused, steps, inside_n, counted)
     contig = _contiguous(found, band, use[0].line)
     cands = {x: [fixed[x]] if x in fixed else _candidates(trips[x], contig.get(x)) for x in band}
+    for x, u in multiples.items():
+        cap = min(trips[x], _MAX_SIZE) if trips[x] is not None else _MAX_SIZE
+        cands[x] = sorted({c for c in cands[x] if c % u == 0} | {u * k for k in _STEPS if u * k <= cap} or {u})
+    if multiples:
+        why.append("multiples of the jam factors: " + ", ".join(f"{x} of {u}" for x, u in multiples.items()))
+    for x, u in block.items():
+        cands[x] = [u]
+    if block:
+        why.append(f"{use[0].name} tiles around the register block " + ", ".join(f"{x}={u}" for x, u in block.items())
+                   + " (its data and the run of the other loops must fit)")
     if contig:
         why.append("contiguous dimension walked by " + ", ".join(f"{x} (multiples of {e} elements = one line)"
                                                                 for x, e in contig.items() if x not in fixed))
@@ -532,8 +550,14 @@ def choose(nest: Nest, analysis, band: tuple[str, ...], levels: list[Level],
         outer, notes = pick(outer_lv, cands2, band)
         why += notes
         if outer != inner:
-            kept = {x: inner[x] for x in band if inner[x] < outer[x]}
-            chosen = [outer, kept]
+            kept = {x: inner[x] for x in band if inner[x] < outer[x] and block.get(x) != inner[x]}
+            last = (band + inside)[-1]
+            if last in kept and kept[last] < contig.get(last, 0):
+                why.append(f"no {use[0].name} tiles of the innermost loop '{last}': {kept[last]} iterations are less "
+                           f"than a line of what it walks ({contig[last]} elements), and the line would be split "
+                           "between tiles")
+                del kept[last]
+            chosen = [outer, kept] if kept else [outer]
             why.append(f"{use[1].name} tiles {_show(outer, band)} (multiples of the {use[0].name} tiles; inner "
                        f"level: {_show(kept, band)}):")
             why += _describe(outer_lv, outer, band)
@@ -586,7 +610,8 @@ def band_of(nest: Nest, analysis, items: tuple[tuple[str | None, int | None], ..
     return tuple(its[k] for k in idx)
 
 
-def resolve(nest: Nest, analysis, req, auto: AutoSizing):
+def resolve(nest: Nest, analysis, req, auto: AutoSizing, multiples: dict[str, int] | None = None,
+            block: dict[str, int] | None = None):
     """The request with the chosen sizes (``req`` a ``TileRequest`` without sizes), the choice, and
     the words the guard comment adds to its ``made by:`` line."""
     from dataclasses import replace
@@ -598,7 +623,7 @@ def resolve(nest: Nest, analysis, req, auto: AutoSizing):
         fixed = {band[k]: v for k, (_, v) in enumerate(auto.items) if v is not None}
     else:
         fixed = {n: v for n, v in auto.items if n is not None and v is not None}
-    choice = choose(nest, analysis, band, list(auto.levels), dict(auto.params), fixed)
+    choice = choose(nest, analysis, band, list(auto.levels), dict(auto.params), fixed, multiples, block)
     if not auto.items:
         why = ("the longest run of outermost loops that is fully permutable" if len(band) > 1 else
                "the outermost loop alone: the loops inside it are not fully permutable with it")

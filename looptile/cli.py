@@ -189,8 +189,24 @@ def _tile_request(sizes: tuple[str, ...], order: str | None, remainder: str | No
     """--sizes (repeatable: one per level, outermost first), --order, --remainder, --jam."""
     return TileRequest(_parse_sizes(sizes[0]) if sizes else (),
                        tuple(x.strip() for x in order.split(",")) if order else None, remainder or "split",
-                       _parse_factors(jam_spec, "--jam") if jam_spec else (), scalarize,
+                       _parse_factors(jam_spec, "--jam") if jam_spec and jam_spec.strip() != "auto" else (),
+                       scalarize,
                        tuple(_parse_sizes(x) for x in sizes[1:]))
+
+
+def _register_tiling(jam_spec: str | None, registers: str | None, kw: dict):
+    """``--jam auto`` with --registers and --params: the RegisterTiling (None without auto)."""
+    from .regtile import RegisterTiling, machine_registers, parse_registers
+    if not (jam_spec and jam_spec.strip() == "auto"):
+        if registers:
+            raise UsageError("--registers goes with --jam auto (the register tile chosen by its model)")
+        return None
+    bounds: dict[str, int] = {}
+    for values in _verify_options(kw, ()).params:  # the largest value of each parameter bounds the trip counts
+        for name, v in values.items():
+            bounds[name] = max(v, bounds.get(name, v))
+    regs = parse_registers(registers) if registers else machine_registers()
+    return RegisterTiling(regs, tuple(sorted(bounds.items())))
 
 
 def _all_sizes(req: TileRequest) -> tuple[int, ...]:
@@ -416,7 +432,8 @@ def verify_cmd(file: str, nest: str | None, sizes: tuple[str, ...], order: str |
                    "'auto' (or i=auto,j=32): chosen from the cache geometry.")
 @click.option("--cache", "cache", multiple=True, metavar="L1=48KiB/12/64",
               help="With --sizes auto: a cache level SIZE/WAYS/LINE (repeatable; default: this machine's).")
-@click.option("--explain", is_flag=True, help="With --sizes auto: print how the sizes were chosen (stderr).")
+@click.option("--explain", is_flag=True,
+              help="With --sizes auto or --jam auto: print how the numbers were chosen (stderr).")
 @click.option("--order", metavar="LIST", help="New loop order, e.g. ii,kk,jj,i,k,j (ii or i.1 = tile loop of i).")
 @click.option("--remainder", type=click.Choice(["split", "clamp"]), default=None,
               help="split (default): fast path for whole tiles; clamp: min-style bounds only.")
@@ -427,7 +444,10 @@ def verify_cmd(file: str, nest: str | None, sizes: tuple[str, ...], order: str |
 @click.option("--verify", "check", is_flag=True,
               help="Compile and run both versions first (as the verify command); write nothing if they differ.")
 @click.option("--jam", "jam_spec", metavar="SPEC",
-              help="Then unroll-and-jam loops inside the tiles, e.g. i=4,j=4 (register tiles).")
+              help="Then unroll-and-jam loops inside the tiles, e.g. i=4,j=4 (register tiles); 'auto': chosen "
+                   "from the vector registers.")
+@click.option("--registers", metavar="COUNTxBYTES",
+              help="With --jam auto: the vector registers to size for, e.g. 16x32 (default: this machine's).")
 @click.option("--scalarize", is_flag=True,
               help="With --jam: keep elements the innermost loop keeps touching in locals.")
 @click.option("--check-overlap", "check_overlap", is_flag=True,
@@ -442,12 +462,14 @@ def verify_cmd(file: str, nest: str | None, sizes: tuple[str, ...], order: str |
 @reporting
 def tile(file: str, nest: str, sizes: tuple[str, ...], cache: tuple[str, ...], explain: bool, order: str | None,
          remainder: str, as_diff: bool, output: str | None, in_place: bool, force: bool, check: bool,
-         jam_spec: str | None, scalarize: bool, parallel: bool, check_overlap: bool, **kw) -> None:
+         jam_spec: str | None, registers: str | None, scalarize: bool, parallel: bool, check_overlap: bool,
+         **kw) -> None:
     """Strip-mine a band of loops and move the tile loops outward, if the analysis proves it legal."""
     try:
         if sum([as_diff, bool(output), in_place]) > 1:
             raise UsageError("choose one of --diff, -o OUT and --in-place")
-        auto, fallback = _auto_sizing(sizes, cache, explain, kw)
+        regtile = _register_tiling(jam_spec, registers, kw)
+        auto, fallback = _auto_sizing(sizes, cache, explain and not regtile, kw)
         req = _tile_request(() if auto else sizes, order, remainder, jam_spec, scalarize)
         command = _command_text(file, nest, sizes, order, remainder or "split",
                                 dict(kw, jam_spec=jam_spec, scalarize=scalarize, parallel=parallel,
@@ -456,12 +478,12 @@ def tile(file: str, nest: str, sizes: tuple[str, ...], cache: tuple[str, ...], e
                                     command + (_auto_words(auto) if auto else ""),
                                     split_fallback=remainder is None, reassociate=tuple(kw["reassociate"]),
                                     parallel=parallel, assume_in_row=kw["assume_in_row"],
-                                    check_overlap=check_overlap, autosize=auto)
+                                    check_overlap=check_overlap, autosize=auto, regtile=regtile)
         tu = pipeline.load(file, _flags(file, kw))
         outcome = pipeline.tile(tu, nest, req, opts)
-        swept = _all_sizes(req) if not auto else _all_sizes(replace(req, sizes=tuple(zip(outcome.plan.band,
-                                                                                outcome.plan.sizes)),
-                                                                    levels=outcome.plan.levels))
+        swept = _all_sizes(req) if not (auto or regtile) else \
+            _all_sizes(replace(req, sizes=tuple(zip(outcome.plan.band, outcome.plan.sizes)),
+                               levels=outcome.plan.levels, jam=outcome.plan.jam))
         report = verify(tu, outcome.new, outcome.nest.function,
                         _verify_options(dict(kw, check_overlap=check_overlap), swept,
                                         outcome.reassociated)) if check else None
@@ -473,7 +495,9 @@ def tile(file: str, nest: str, sizes: tuple[str, ...], cache: tuple[str, ...], e
     if fallback:
         click.echo(f"{where}: note: {fallback}", err=True)
     if explain:
-        click.echo(f"{where}: note: tile sizes chosen by the cache model:", err=True)
+        click.echo(f"{where}: note: " + ("tile sizes chosen by the cache model" if auto else "")
+                   + (" and " if auto and regtile else "") + ("the register tile chosen by its model" if regtile
+                                                             else "") + ":", err=True)
         for line in outcome.explanation:
             click.echo(f"  {line}", err=True)
     _deliver(file, outcome, report, as_diff, output, in_place)

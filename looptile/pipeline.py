@@ -47,6 +47,7 @@ class TileOptions:
     reassociate: tuple[str, ...] = ()  # --reassociate NAME: accumulations whose additions may be reordered
     parallel: bool = False  # --parallel: mark the outermost loop that carries no dependence (pragmas.py)
     autosize: object | None = None  # autosize.AutoSizing: sizes chosen by the cache model (--sizes auto)
+    regtile: object | None = None  # regtile.RegisterTiling: the register tile chosen by its model (--jam auto)
 
 
 @dataclass(frozen=True)
@@ -389,16 +390,10 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
     _check_not_rewritten(tu, site, opts)
     nest, analysis = analyse(tu, site, opts.assume_pure, opts.assumptions, opts.directive, opts.assume_in_row,
                              opts.reassociate, keep_pragmas=True)
-    explanation: tuple[str, ...] = ()
-    if opts.autosize is not None:  # numbers before planning: the legality test runs on them as on any others
-        from . import autosize
-        req, choice, words = autosize.resolve(nest, analysis, req, opts.autosize)
-        opts, explanation = replace(opts, command=f"{opts.command} ({words})"), tuple(choice.explanation)
+    req, plan, opts, explanation, reg_notes = _chosen_plan(tu, nest, analysis, req, opts)
     rows_checked = in_row_checks(tu, nest, analysis, opts)
     ov = overlap.overlap_check(tu, nest, analysis) if opts.check_overlap else None
     overlap_checked = [ov.condition] if ov is not None else []
-    plan = plan_tiling(nest, req, tu.identifiers, _from_analysis(analysis, deps.band_hull),
-                       _from_analysis(analysis, deps.scan_bounds))
     if req.jam or req.scalarize:
         if not plan.band:
             raise UsageError("--jam needs tiles (--sizes); to unroll and jam without tiling, use the jam command")
@@ -415,7 +410,7 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
         head, details = describe_witness(what, legality.witness, nest, analysis.reassociation)
         raise Refusal(head, path=nest.path, line=nest.line, column=nest.col,
                       source_line=src.line_text(nest.line), details=details)
-    notes: list[str] = []
+    notes: list[str] = list(reg_notes)
     placement = pragmas.place(tu, nest, analysis, plan, pragmas.collect(tu, nest, opts.directive), opts.parallel,
                               tu.flags.c89)
     if main_and_remainder(plan) and any(placement.parallel_at(k) for k, s in enumerate(plan.slots)
@@ -477,6 +472,65 @@ def tile(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> 
         notes.append("assumed (--assume-in-row): " + "; ".join(sorted({o.what for o in analysis.in_row_failing})))
     return TileOutcome(src.path, src.data, new, nest, plan, tuple(notes),
                        reduction.floating(analysis.reassociation, legality.reordered), explanation)
+
+
+def chosen_request(tu: TranslationUnit, sel: str, req: TileRequest, opts: TileOptions) -> TileRequest:
+    """The request with the numbers ``--sizes auto`` and ``--jam auto`` choose, without making
+    the rewrite (tune's analytic candidates)."""
+    nest, analysis = analyse(tu, select(tu, sel), opts.assume_pure, opts.assumptions, opts.directive,
+                             opts.assume_in_row, opts.reassociate, keep_pragmas=True)
+    return _chosen_plan(tu, nest, analysis, req, opts)[0]
+
+
+def _chosen_plan(tu: TranslationUnit, nest: Nest, analysis: NestAnalysis, req: TileRequest, opts: TileOptions):
+    """The request and plan with the numbers the models choose (``--sizes auto``: tile sizes from
+    the cache model; ``--jam auto``: the register tile, chosen first when both are asked, so that
+    the sizes are multiples of its factors), the options with the guard's made-by words, the
+    explanation, and notes. Numbers before the legality test: it runs on them as on any others."""
+    from . import autosize, regtile
+
+    def planned(r: TileRequest) -> TilePlan:
+        return plan_tiling(nest, r, tu.identifiers, _from_analysis(analysis, deps.band_hull),
+                           _from_analysis(analysis, deps.scan_bounds))
+
+    sized: list[str] = []  # the cache model's explanation
+    regs: list[str] = []  # the register model's
+    words: list[str] = []
+    notes: list[str] = []
+    base = req
+    if opts.autosize is not None:
+        req, choice, said = autosize.resolve(nest, analysis, base, opts.autosize, dict(req.jam))
+        sized, words = list(choice.explanation), [said]
+    plan = planned(req)
+    if opts.regtile is not None:
+        last = max((k for k, s in enumerate(plan.slots) if s.kind == "tile"), default=None)
+        if last is None:
+            raise UsageError("--jam auto needs tiles (--sizes); to unroll and jam without tiling, use the jam "
+                             "command", path=nest.path, line=nest.line, column=nest.col)
+        inside = tuple(s.iterator for s in plan.slots[last + 1:])
+        given = None if opts.autosize is not None else {x: plan.size_of(x) for x in plan.band if plan.size_of(x)}
+        rc = regtile.choose(nest, inside, opts.regtile, given, req.scalarize)
+        regs = list(rc.explanation)
+        if rc.factors and opts.autosize is not None:  # sizes again, knowing the register tile
+            block = True
+            req, choice, said = autosize.resolve(nest, analysis, base, opts.autosize,
+                                                 None if block else dict(rc.factors),
+                                                 dict(rc.factors) if block else None)
+            sized, words = list(choice.explanation), [said]
+            plan = planned(req)
+        req = replace(req, jam=rc.factors, scalarize=(req.scalarize or rc.scalarize) and bool(rc.factors))
+        if rc.factors:
+            words.append(f"register tile chosen for {opts.regtile.registers.count} vector registers of "
+                         f"{opts.regtile.registers.vector_bytes} bytes: --jam {rc.spec()}"
+                         + (" --scalarize" if req.scalarize else "") + (f"; {rc.advice}" if rc.advice else ""))
+            notes.append(f"register tile: --jam {rc.spec()}" + (" --scalarize" if req.scalarize else "")
+                         + f" ({rc.kind})" + (f"; {rc.advice}" if rc.advice else ""))
+        else:
+            notes.append(rc.explanation[-1])
+    explanation = regs + sized
+    if words:
+        opts = replace(opts, command=f"{opts.command} ({'; '.join(words)})")
+    return req, plan, opts, tuple(explanation), tuple(notes)
 
 
 def directive_removal(tu: TranslationUnit, directive: int | None) -> list[Edit]:

@@ -4,7 +4,8 @@ Every variant is made by the tile job in memory (so it is a proven rewrite); the
 a candidate too. Each variant is compiled with the timing driver (a thread pool running
 ``cc``), then all are timed one after the other (serially: two runs never share the
 machine). Two rounds: first the original, the analytic pick and its neighbours and a grid
-of tile sizes; then unroll-and-jam (with and without scalar replacement) on the fastest
+of tile sizes; then the register model's pick (``tile --sizes auto --jam auto``: its tiles
+and register tile) and unroll-and-jam (with and without scalar replacement) on the fastest
 tiles of the first round. The fastest variant is then timed again, interleaved with the
 original, and wins only if it beats the original by ``min_gain`` in the pooled medians; the
 winner is checked with verify at small sizes before it is reported.
@@ -196,6 +197,25 @@ def analytic(nest: Nest, analysis, band: tuple[str, ...], params: dict[str, int]
     lv = tuple(tuple((it, int(s)) for it, s in level.items()) for level in choice.levels) or \
         (tuple((it, int(s)) for it, s in choice.sizes.items()),)
     return Config(lv, origin="analytic")
+
+
+def analytic_register(tu: TranslationUnit, sel: str, band: tuple[str, ...], opts: TuneOptions,
+                      notes: list[str]) -> Config | None:
+    """The pick of the cache and register models together (``tile --sizes auto --jam auto``): its
+    tiles, register tile and scalarization, when the register model finds a tile."""
+    from . import autosize, regtile
+    levels, _ = machine_levels()
+    auto = autosize.AutoSizing(tuple((x, None) for x in band), tuple(levels), tuple(sorted(opts.params.items())))
+    regs = regtile.RegisterTiling(regtile.machine_registers(), tuple(sorted(opts.params.items())))
+    try:
+        req = pipeline.chosen_request(tu, sel, TileRequest(order=opts.order),
+                                      replace(opts.tile, autosize=auto, regtile=regs))
+    except LooptileError as exc:
+        notes.append(f"no analytic register tile: {exc.headline() if hasattr(exc, 'headline') else exc}")
+        return None
+    if not req.jam:
+        return None
+    return Config((tuple(req.sizes),) + tuple(req.levels), tuple(req.jam), req.scalarize, "analytic")
 
 
 def neighbours(pick: Config) -> list[Config]:
@@ -431,8 +451,12 @@ def run(tu: TranslationUnit, sel: str, opts: TuneOptions, command_of: Callable[[
             bases.append(pick)
         if pick is not None and len(pick.levels) > 1:  # its outer tiles alone hold register tiles too
             bases.append(Config(pick.levels[:1], origin="analytic"))
+        reg = analytic_register(tu, sel, band, opts, notes)
+        second = [replace(reg, extra_cflags=tuple(f)) for f in ((),) + tuple(opts.cflags_variants)] if reg else []
         if loops and factors:
-            second = [c for b in bases for c in jam_configs(b, loops, factors, opts.cflags_variants)]
+            second += [c for b in bases for c in jam_configs(b, loops, factors, opts.cflags_variants)
+                       if c not in second]
+        if second:
             _round(tu, sel, second, variants, tmp, spec, args, opts, clock, command_of, progress, 0.7)
         orig = variants[0]
         if orig.status != "timed":
