@@ -350,13 +350,14 @@ def simulate_cmd(file: str, nest: str, sizes: tuple[str, ...], order: str | None
         auto = None
         if any(_AUTO.search(spec) for spec in sizes):
             auto, _ = _auto_sizing(sizes, caches, False, dict(kw, params=sim_params, shapes=(), seed=0, timeout=1.0))
+        regtile = _register_tiling(jam_spec, None, dict(kw, params=sim_params, shapes=(), seed=0, timeout=1.0))
         req = _tile_request(() if auto else sizes, order, remainder, jam_spec, scalarize) \
             if (sizes or order or jam_spec) else None
         topts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), False,
                                      _command_text(file, nest, sizes, order, remainder or "split",
                                                    dict(kw, jam_spec=jam_spec, scalarize=scalarize)),
                                      split_fallback=remainder is None, reassociate=tuple(kw["reassociate"]),
-                                     assume_in_row=kw["assume_in_row"], autosize=auto)
+                                     assume_in_row=kw["assume_in_row"], autosize=auto, regtile=regtile)
         params = _parse_params(sim_params)
         opts = sim.SimulateOptions(tuple(levels), params, tuple(x.strip() for x in only.split(",")) if only else (),
                                    progress=sys.stderr.isatty() and not as_json)
@@ -407,6 +408,9 @@ def verify_cmd(file: str, nest: str | None, sizes: tuple[str, ...], order: str |
             report = verify(tu, candidate, func, _verify_options(kw, (), tuple(kw["reassociate"])),
                             candidate_name="hand-rewritten")
         else:
+            if jam_spec and jam_spec.strip() == "auto":
+                raise UsageError("--jam auto (the register tile chosen by its model) is for tile and simulate; here "
+                                 "give the factors (the guard comment of the rewrite records them)")
             req = _tile_request(sizes, order, remainder, jam_spec, scalarize)
             opts = pipeline.TileOptions(tuple(kw["assumptions"]), frozenset(kw["assume_pure"]), False,
                                         _command_text(file, nest, sizes, order, remainder or "split",
