@@ -4,8 +4,10 @@
                                [--jobs 2] [--blas] [--json OUT.json]
 
 For each case: `looptile tune FILE --nest SEL --params ... --json` (the original is timed by tune
-itself, with its driver), then `looptile tile FILE --nest SEL --sizes auto --params ...` timed with
-the same driver and flags (looptile.tune.time_source), and, with --blas, numpy's matrix product
+itself, with its driver), then `looptile tile FILE --nest SEL --sizes auto --params ...` and
+`... --sizes auto --jam auto ...` timed with the same driver and flags (looptile.tune.time_source;
+a register tile whose guard comment advises -fno-tree-loop-vectorize is built with it added, as
+its user would), and, with --blas, numpy's matrix product
 with one thread (OPENBLAS_NUM_THREADS=1 and friends set before numpy is imported) for the
 multiplies. The table gives GFLOP/s or GB/s (as tune reports them: operations counted from the
 statements, or the bytes of the arrays' footprint) and the ratios; the commands are printed.
@@ -48,21 +50,29 @@ def shown(args: list[str]) -> str:
     return " ".join(shlex.quote(a) for a in ["looptile", *args])
 
 
-def auto_rate(file: str, nest: str, params: str, runs: int, cflags: list[str]) -> tuple[float | None, str]:
-    """Seconds of `tile --sizes auto`'s output with tune's driver, and the command."""
+ADVISED = "-fno-tree-loop-vectorize"  # what the guard comment of an accumulator register tile advises for gcc
+
+
+def auto_rate(file: str, nest: str, params: str, runs: int, cflags: list[str],
+              jam: bool = False) -> tuple[float | None, str]:
+    """Seconds of `tile --sizes auto [--jam auto]`'s output with tune's driver, and the command.
+    With a register tile whose guard comment advises a flag, the output is built with it added
+    (as its user would build it), and the command says so."""
     from looptile import pipeline, tune
     from looptile.flags import CompileFlags
-    args = ["tile", file, "--nest", nest, "--sizes", "auto", "--params", params]
+    args = ["tile", file, "--nest", nest, "--sizes", "auto", *(["--jam", "auto"] if jam else []), "--params", params]
     with tempfile.TemporaryDirectory() as tmp:
         out = Path(tmp, "auto.c")
         p = subprocess.run(looptile() + args + ["-o", str(out)], cwd=REPO, capture_output=True, text=True)
         if p.returncode != 0:
             return None, shown(args) + f"  # failed: {p.stderr.strip()[:200]}"
+        data = out.read_bytes()
+        advised = [ADVISED] if f"build with {ADVISED}".encode() in data else []
         tu = pipeline.load(str(REPO / file), CompileFlags())
         values = {k: int(v) for k, v in (x.split("=") for x in params.split(","))}
-        opts = tune.TuneOptions(values, runs=runs, cflags=tuple(cflags), budget=600)
-        times = tune.time_source(tu, nest, out.read_bytes(), opts)  # the nests here are named by function
-    return statistics.median(times), shown(args)
+        opts = tune.TuneOptions(values, runs=runs, cflags=tuple(cflags + advised), budget=600)
+        times = tune.time_source(tu, nest, data, opts)  # the nests here are named by function
+    return statistics.median(times), shown(args) + (f"  # built with {ADVISED} added, as advised" if advised else "")
 
 
 def blas(n: int, reps: int) -> float | None:
@@ -116,9 +126,11 @@ def main(argv: list[str] | None = None) -> int:
         amount = doc["flops"] or doc["bytes"]
         unit = doc["metric"]
         auto_s, auto_cmd = auto_rate(file, nest, params, args.runs, cflags)
+        reg_s, reg_cmd = auto_rate(file, nest, params, args.runs, cflags, jam=True)
         tiles = [v["seconds"] for v in doc["variants"] if v["status"] == "timed" and v["levels"] and not v["jam"]]
         tile_s = min(tiles) if tiles else None
         print("$ " + auto_cmd, flush=True)
+        print("$ " + reg_cmd, flush=True)
 
         def rate(sec: float | None, amount: int | None = amount) -> str:
             return f"{amount / sec * 1e-9:.2f}" if sec and amount else "-"
@@ -127,6 +139,7 @@ def main(argv: list[str] | None = None) -> int:
                      rate(tile_s), f"{tile_s / auto_s:.2f}" if tile_s and auto_s else "-",
                      rate(best["seconds"]), f"{orig / best['seconds']:.1f}",
                      f"{best['seconds'] / auto_s:.2f}" if auto_s else "-",
+                     rate(reg_s), f"{best['seconds'] / reg_s:.2f}" if reg_s else "-",
                      f"{b:.2f}" if b else "-",
                      f"{amount / best['seconds'] * 1e-9 / b:.2f}" if b and amount else "-",
                      "original" if doc["original_won"] else best["label"].replace("|", "/"),
@@ -134,9 +147,9 @@ def main(argv: list[str] | None = None) -> int:
         print(f"  best: {best['label']} ({'original won' if doc['original_won'] else best['command']})", flush=True)
     print()
     print("| case | unit | original | --sizes auto | auto x orig | tune's fastest tiles (no jam) | auto / those "
-          "| tune best | best x orig | auto / best | BLAS 1 thread | best x BLAS | tune's choice "
-          "| variants, tune time |")
-    print("|" + "---|" * 14)
+          "| tune best | best x orig | auto / best | --sizes auto --jam auto | that / best | BLAS 1 thread "
+          "| best x BLAS | tune's choice | variants, tune time |")
+    print("|" + "---|" * 16)
     for r in rows:
         print("| " + " | ".join(r) + " |")
     if args.json_out:
