@@ -21,7 +21,7 @@ from .emit import (
     printed_expressions,
     split_point,
 )
-from .errors import InternalError, Refusal, UsageError
+from .errors import InternalError, LooptileError, Refusal, UsageError
 from .flags import CompileFlags
 from .frontend import LoopSite, TranslationUnit
 from .model import Affine, Nest, Reassociation
@@ -488,6 +488,7 @@ def _chosen_plan(tu: TranslationUnit, nest: Nest, analysis: NestAnalysis, req: T
     the sizes are multiples of its factors), the options with the guard's made-by words, the
     explanation, and notes. Numbers before the legality test: it runs on them as on any others."""
     from . import autosize, regtile
+    from .transform.jam import plan_tile_jam
 
     def planned(r: TileRequest) -> TilePlan:
         return plan_tiling(nest, r, tu.identifiers, _from_analysis(analysis, deps.band_hull),
@@ -510,14 +511,35 @@ def _chosen_plan(tu: TranslationUnit, nest: Nest, analysis: NestAnalysis, req: T
         inside = tuple(s.iterator for s in plan.slots[last + 1:])
         given = None if opts.autosize is not None else {x: plan.size_of(x) for x in plan.band if plan.size_of(x)}
         rc = regtile.choose(nest, inside, opts.regtile, given, req.scalarize)
+        # The block, or the vector loop's factor alone, or none: the first that is legal with the
+        # sizes it gets (a chosen number never turns a legal tiling into a refusal).
+        tried = [rc.factors] + ([rc.factors[-1:]] if len(rc.factors) > 1 else [])
+        said_why = list(rc.explanation)
+        for k, factors in enumerate(tried):
+            r2, p2, s2, w2 = req, plan, sized, words
+            if opts.autosize is not None:  # sizes again, knowing the register tile
+                block = dict(factors)
+                r2, choice, said = autosize.resolve(nest, analysis, base, opts.autosize, None, block)
+                s2, w2 = list(choice.explanation), [said]
+                p2 = planned(r2)
+            spec = ",".join(f"{x}={u}" for x, u in factors)
+            try:
+                legal = analysis.check(list(plan_tile_jam(nest, p2, factors).schedule)).legal
+                why = "it would break a dependence"
+            except LooptileError as exc:
+                legal, why = False, exc.headline() if hasattr(exc, "headline") else str(exc)
+            if legal:
+                req, plan, sized, words = r2, p2, s2, w2
+                if k:
+                    said_why.append(f"jam {spec} is legal: taken")
+                rc = replace(rc, factors=factors, explanation=tuple(said_why))
+                break
+            said_why.append(f"jam {spec}: {why}")
+        else:
+            if rc.factors:
+                rc = replace(rc, factors=(), kind="none", scalarize=False, advice="",
+                             explanation=tuple(said_why + ["no register tile: none of these is legal here"]))
         regs = list(rc.explanation)
-        if rc.factors and opts.autosize is not None:  # sizes again, knowing the register tile
-            block = True
-            req, choice, said = autosize.resolve(nest, analysis, base, opts.autosize,
-                                                 None if block else dict(rc.factors),
-                                                 dict(rc.factors) if block else None)
-            sized, words = list(choice.explanation), [said]
-            plan = planned(req)
         req = replace(req, jam=rc.factors, scalarize=(req.scalarize or rc.scalarize) and bool(rc.factors))
         if rc.factors:
             words.append(f"register tile chosen for {opts.regtile.registers.count} vector registers of "

@@ -67,6 +67,15 @@ void relax(int n, int m, double b[n][m], const double a[n][m])
             b[i][j] = 0.25 * (a[i - 1][j] + a[i + 1][j] + a[i][j - 1] + a[i][j + 1]);
 }
 
+/* Drift of a basin row into the next: C[i][j] reads the row above, one column on. */
+void drift(int n, double C[n][n], const double B[n])
+{
+    for (int i = 1; i < n; i++)
+        for (int j = 0; j < n - 1; j++)
+            for (int k = 0; k < n; k++)
+                C[i][j] += C[i - 1][j + 1] * B[k];
+}
+
 /* Gauge covariance, lower triangle. */
 void tri(int n, double S[n][n], const double X[n][n])
 {
@@ -201,6 +210,22 @@ def test_trip_counts_bound_the_factors(kernels):
                     "--params", "n=6", *GEOMETRY)
     assert r.exit_code == 0, r.stderr
     assert "--jam i=6,j=6 --scalarize" in _made_by(text)
+
+
+@pytest.mark.cc
+def test_an_illegal_block_falls_back(kernels):
+    # Only i is tiled; the model's 8 x 8 block jams i inside j, which runs (i + 1, j - 1) before
+    # (i, j): the flow dependence of distance (1, -1) forbids it. Jamming j alone keeps i outside
+    # and is legal, so that is taken (and verified by compiling and running both versions).
+    r, text = _tile(kernels, "drift", "--sizes", "i=16", "--jam", "auto", "--registers", "32x64", "--params",
+                    "n=30", "--explain", "--verify")
+    assert r.exit_code == 0, r.stderr
+    assert "jam i=8,j=8: it would break a dependence" in r.stderr and "jam j=8 is legal: taken" in r.stderr
+    assert "--jam j=8 --scalarize" in _made_by(text)
+    assert "verdict: equal" in r.stderr
+    # asked by hand, the same block is refused with its witness
+    r = run_cli("tile", kernels, "--nest", "drift", "--sizes", "i=16", "--jam", "i=8,j=8")
+    assert r.exit_code == 1 and "refused" in r.stderr
 
 
 # ---------------------------------------------------------------- sizes around the block
