@@ -271,6 +271,9 @@ def run_job(tu: TranslationUnit, sel: str, d: directives.Directive, topts: pipel
             from .autosize import AutoSizing
             topts = replace(topts, autosize=AutoSizing(d.auto, tuple(cache or machine_levels()[0]),
                                                        named="tile(...)"))
+        if d.jam_auto:
+            from .regtile import RegisterTiling, machine_registers
+            topts = replace(topts, regtile=RegisterTiling(machine_registers()))
         if d.levels:
             if not _tile_takes("levels"):
                 line, col = tu.source.line_col(d.level_offset or p.offset)
@@ -308,6 +311,7 @@ def _verify(tu: TranslationUnit, outcome, d: directives.Directive, check: Verify
     if d.auto is not None:  # the sizes the cache model chose
         sizes = tuple(outcome.plan.sizes) + tuple(s for level in outcome.plan.levels for _, s in level)
     sizes += tuple(u for _, u in d.jam.factors) if d.jam is not None else ()
+    sizes += tuple(u for _, u in outcome.plan.jam) if d.jam_auto else ()  # the factors the register model chose
     sizes += (d.unroll.factor,) if d.unroll is not None and d.unroll.factor is not None else ()
     nest = outcome.nest
     where = dict(path=nest.path, line=nest.line, column=nest.col)

@@ -79,6 +79,7 @@ class Directive:
     level_offset: int | None = None  # where the second tile(...) clause is written
     # tile(i=auto, j=32): the clause's items, None for a size chosen from the cache geometry (autosize.py)
     auto: tuple[tuple[str, int | None], ...] | None = None
+    jam_auto: bool = False  # tile(...) jam(auto): the register tile chosen by its model (regtile.py)
 
 
 @dataclass(frozen=True)
@@ -393,6 +394,7 @@ def _looptile(p: Pragma, parser: _Parser) -> Directive:
     order: tuple[str, ...] | None = None
     remainder: str | None = None
     jam: JamDirective | None = None
+    jam_auto = False
     for name, items in clauses:
         if name.text == "scalarize":
             if items is not None:
@@ -401,6 +403,8 @@ def _looptile(p: Pragma, parser: _Parser) -> Directive:
             raise parser.error(f"'{name.text}' needs a parenthesised list, e.g. {_EXAMPLE[name.text]}", name)
         elif name.text == "tile":
             levels.append(parser.named_sizes(name, items, "tile size", allow_auto=True))
+        elif name.text == "jam" and len(items) == 1 and [t.text for t in items[0]] == ["auto"]:
+            jam_auto = True
         elif name.text == "jam":
             jam = JamDirective(parser.named_sizes(name, items, "unroll factor"))
         elif name.text == "order":
@@ -411,7 +415,10 @@ def _looptile(p: Pragma, parser: _Parser) -> Directive:
     if remainder is not None and not levels:
         raise parser.error("remainder(...) chooses how partial tiles run; it needs a tile(...) clause",
                            seen["remainder"])
-    if "scalarize" in seen and jam is None:
+    if jam_auto and not levels:
+        raise parser.error("jam(auto) chooses a register tile inside tiles; it needs tile(...) (for a jam without "
+                           "tiles give the factors, jam(i=4))", seen["jam"])
+    if "scalarize" in seen and jam is None and not jam_auto:
         raise parser.error("scalarize keeps elements in locals between the jammed copies; it needs jam(...)",
                            seen["scalarize"])
     if jam is not None and order is not None and not levels:
@@ -425,7 +432,7 @@ def _looptile(p: Pragma, parser: _Parser) -> Directive:
         auto, levels = levels[0], [()]
     tile = TileRequest(levels[0] if levels else (), order, remainder or "split") if levels or order else None
     return Directive(p, tile, remainder is None, jam, None, "scalarize" in seen, tuple(parser.used_macros),
-                     tuple(levels[1:]), tiles[1].offset if len(tiles) > 1 else None, auto)
+                     tuple(levels[1:]), tiles[1].offset if len(tiles) > 1 else None, auto, jam_auto)
 
 
 _EXAMPLE = {"tile": "tile(i=32, j=32)", "jam": "jam(i=4)", "order": "order(ii, jj, i, j)",

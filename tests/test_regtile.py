@@ -301,3 +301,25 @@ def test_usage_errors(kernels):
     assert r.exit_code == 2 and "--jam auto needs tiles" in r.stderr
     r = run_cli("verify", kernels, "--nest", "couple", "--sizes", "8,8,8", "--jam", "auto")
     assert r.exit_code == 2 and "--jam auto" in r.stderr and "is for tile and simulate" in r.stderr
+
+
+@pytest.mark.cc
+def test_directive_jam_auto(tmp_path, monkeypatch):
+    monkeypatch.setattr(regtile, "machine_registers", lambda: Registers(16, 32, "test"))
+    src = tmp_path / "basin_dir.c"
+    src.write_text(
+        "void couple(int n, double C[n][n], const double A[n][n], const double B[n][n])\n{\n"
+        "#pragma looptile tile(i=32, j=32, k=32) jam(auto)\n"
+        "    for (int i = 0; i < n; i++)\n        for (int j = 0; j < n; j++)\n"
+        "            for (int k = 0; k < n; k++)\n                C[i][j] += A[i][k] * B[k][j];\n}\n"
+        "void lone(int n, double C[n][n])\n{\n#pragma looptile jam(auto)\n"
+        "    for (int i = 0; i < n; i++)\n        for (int j = 0; j < n; j++)\n            C[i][j] += 1.0;\n}\n")
+    out = tmp_path / "out"
+    r = run_cli("apply", src, "-o", out, "--verify")
+    assert r.exit_code == 1, r.stderr  # the second directive is an error
+    text = (out / "basin_dir.c").read_text()
+    # 16 registers of 32 bytes: the 4 x 8 block worked out in test_accumulator_block
+    assert "--jam i=4,j=8 --scalarize" in _made_by(text) and "jam(auto)" in _made_by(text)
+    assert "verdict: equal" in r.stderr
+    assert re.search(r"basin_dir\.c:11:18: error: jam\(auto\) chooses a register tile inside tiles", r.stderr)
+    assert "#pragma looptile jam(auto)" in text  # left as it was
