@@ -140,6 +140,15 @@ def _parse_sizes(spec: str | None) -> tuple[tuple[str | None, int], ...]:
 _AUTO = re.compile(r"(?:^|[=,])\s*auto\s*(?:,|$)")
 
 
+def _param_bounds(kw: dict) -> dict[str, int]:
+    """The largest value of each parameter over the --params sets: what bounds the trip counts."""
+    bounds: dict[str, int] = {}
+    for values in _verify_options(kw, ()).params:
+        for name, v in values.items():
+            bounds[name] = max(v, bounds.get(name, v))
+    return bounds
+
+
 def _auto_sizing(sizes: tuple[str, ...], cache: tuple[str, ...], explain: bool, kw: dict):
     """``--sizes auto`` (``i=auto,j=32``...) with --cache and --params: the AutoSizing, and why the
     fallback geometry is used (None when given or read); (None, None) without auto."""
@@ -168,10 +177,7 @@ def _auto_sizing(sizes: tuple[str, ...], cache: tuple[str, ...], explain: bool, 
         levels = sorted((parse_level(c, f"L{k + 1}") for k, c in enumerate(cache)), key=lambda lv: lv.size)
     else:
         levels, why = machine_levels()
-    bounds: dict[str, int] = {}
-    for values in _verify_options(kw, ()).params:  # the largest value of each parameter bounds the trip counts
-        for name, v in values.items():
-            bounds[name] = max(v, bounds.get(name, v))
+    bounds = _param_bounds(kw)
     return AutoSizing(() if items == [(None, None)] else tuple(items), tuple(levels),
                       tuple(sorted(bounds.items()))), why
 
@@ -201,10 +207,7 @@ def _register_tiling(jam_spec: str | None, registers: str | None, kw: dict):
         if registers:
             raise UsageError("--registers goes with --jam auto (the register tile chosen by its model)")
         return None
-    bounds: dict[str, int] = {}
-    for values in _verify_options(kw, ()).params:  # the largest value of each parameter bounds the trip counts
-        for name, v in values.items():
-            bounds[name] = max(v, bounds.get(name, v))
+    bounds = _param_bounds(kw)
     regs = parse_registers(registers) if registers else machine_registers()
     return RegisterTiling(regs, tuple(sorted(bounds.items())))
 
