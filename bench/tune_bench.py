@@ -54,7 +54,7 @@ ADVISED = "-fno-tree-loop-vectorize"  # what the guard comment of an accumulator
 
 
 def auto_rate(file: str, nest: str, params: str, runs: int, cflags: list[str],
-              jam: bool = False) -> tuple[float | None, str]:
+              jam: bool = False, advice: bool = True) -> tuple[float | None, str]:
     """Seconds of `tile --sizes auto [--jam auto]`'s output with tune's driver, and the command.
     With a register tile whose guard comment advises a flag, the output is built with it added
     (as its user would build it), and the command says so."""
@@ -67,7 +67,7 @@ def auto_rate(file: str, nest: str, params: str, runs: int, cflags: list[str],
         if p.returncode != 0:
             return None, shown(args) + f"  # failed: {p.stderr.strip()[:200]}"
         data = out.read_bytes()
-        advised = [ADVISED] if f"build with {ADVISED}".encode() in data else []
+        advised = [ADVISED] if advice and f"build with {ADVISED}".encode() in data else []
         tu = pipeline.load(str(REPO / file), CompileFlags())
         values = {k: int(v) for k, v in (x.split("=") for x in params.split(","))}
         opts = tune.TuneOptions(values, runs=runs, cflags=tuple(cflags + advised), budget=600)
@@ -127,6 +127,10 @@ def main(argv: list[str] | None = None) -> int:
         unit = doc["metric"]
         auto_s, auto_cmd = auto_rate(file, nest, params, args.runs, cflags)
         reg_s, reg_cmd = auto_rate(file, nest, params, args.runs, cflags, jam=True)
+        plain_s, _ = auto_rate(file, nest, params, args.runs, cflags, jam=True, advice=False)
+        if reg_s and plain_s:
+            print(f"  --sizes auto --jam auto without the advised flag: {plain_s:.4f} s "
+                  f"({plain_s / reg_s:.2f}x the time with it)", flush=True)
         tiles = [v["seconds"] for v in doc["variants"] if v["status"] == "timed" and v["levels"] and not v["jam"]]
         tile_s = min(tiles) if tiles else None
         print("$ " + auto_cmd, flush=True)
