@@ -75,6 +75,24 @@ def auto_rate(file: str, nest: str, params: str, runs: int, cflags: list[str],
     return statistics.median(times), shown(args) + (f"  # built with {ADVISED} added, as advised" if advised else "")
 
 
+def advises(file: str, nest: str, params: str) -> bool:
+    """Whether `tile --sizes auto --jam auto`'s guard comment advises the flag."""
+    p = subprocess.run(looptile() + ["tile", file, "--nest", nest, "--sizes", "auto", "--jam", "auto", "--params",
+                                     params], cwd=REPO, capture_output=True, text=True)
+    return f"build with {ADVISED}" in p.stdout
+
+
+def in_session(doc: dict, advised: bool) -> float | None:
+    """Seconds of the `--sizes auto --jam auto` configuration as tune itself timed it in its run
+    (the analytic variants: the register pick, with the advised flag when there is advice; the
+    tiles alone when the model chose no register tile), so that it and tune's best are measured
+    in one session, minutes apart at most."""
+    timed = [v for v in doc["variants"] if v["origin"] == "analytic" and v["status"] == "timed"]
+    reg = [v for v in timed if v["jam"] and (ADVISED in (v["cflags"] or "")) == advised]
+    pool = reg or [v for v in timed if not v["jam"]]
+    return min(v["seconds"] for v in pool) if pool else None
+
+
 def blas(n: int, reps: int) -> float | None:
     for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
         os.environ[var] = "1"
@@ -144,6 +162,8 @@ def main(argv: list[str] | None = None) -> int:
                      rate(best["seconds"]), f"{orig / best['seconds']:.1f}",
                      f"{best['seconds'] / auto_s:.2f}" if auto_s else "-",
                      rate(reg_s), f"{best['seconds'] / reg_s:.2f}" if reg_s else "-",
+                     f"{best['seconds'] / sess:.2f}" if (sess := in_session(doc, advises(file, nest, params)))
+                     else "-",
                      f"{b:.2f}" if b else "-",
                      f"{amount / best['seconds'] * 1e-9 / b:.2f}" if b and amount else "-",
                      "original" if doc["original_won"] else best["label"].replace("|", "/"),
@@ -151,9 +171,9 @@ def main(argv: list[str] | None = None) -> int:
         print(f"  best: {best['label']} ({'original won' if doc['original_won'] else best['command']})", flush=True)
     print()
     print("| case | unit | original | --sizes auto | auto x orig | tune's fastest tiles (no jam) | auto / those "
-          "| tune best | best x orig | auto / best | --sizes auto --jam auto | that / best | BLAS 1 thread "
-          "| best x BLAS | tune's choice | variants, tune time |")
-    print("|" + "---|" * 16)
+          "| tune best | best x orig | auto / best | --sizes auto --jam auto | that / best "
+          "| that / best, both in tune's run | BLAS 1 thread | best x BLAS | tune's choice | variants, tune time |")
+    print("|" + "---|" * 17)
     for r in rows:
         print("| " + " | ".join(r) + " |")
     if args.json_out:
