@@ -6,9 +6,10 @@ a candidate too. Each variant is compiled with the timing driver (a thread pool 
 machine). Two rounds: first the original, the analytic pick and its neighbours and a grid
 of tile sizes; then the register model's pick (``tile --sizes auto --jam auto``: its tiles
 and register tile) and unroll-and-jam (with and without scalar replacement) on the fastest
-tiles of the first round. The fastest variant is then timed again, interleaved with the
-original, and wins only if it beats the original by ``min_gain`` in the pooled medians; the
-winner is checked with verify at small sizes before it is reported.
+tiles of the first round. The fastest variants are then timed again, interleaved with the
+original, and judged on those runs alone (the first round's fastest are also its luckiest;
+fresh interleaved runs remove that selection bias): one wins only if it beats the original by
+``min_gain`` there; the winner is checked with verify at small sizes before it is reported.
 
 Library code: returns values, raises LooptileError subclasses, never exits.
 """
@@ -86,10 +87,15 @@ class Variant:
     times: list[float] = field(default_factory=list)
     result_hash: str | None = None
     note: str = ""
+    confirmed: list[float] = field(default_factory=list)  # the times of the confirmation round alone
 
     @property
     def seconds(self) -> float | None:
-        return statistics.median(self.times) if self.times else None
+        """The median of the confirmation round when there was one (the first round's fastest
+        variants are also its luckiest: judging them on fresh, interleaved runs removes that
+        selection bias), else of every run."""
+        runs = self.confirmed or self.times
+        return statistics.median(runs) if runs else None
 
 
 @dataclass(frozen=True)
@@ -403,12 +409,18 @@ def _round(tu, sel, configs: list[Config], variants: list[Variant], tmp: str, sp
 def _confirm(orig: Variant, finalists: list[Variant], args: list[str], opts: TuneOptions, clock: Clock,
              cap: float) -> None:
     """Time the original and the finalists again, interleaved, twice each (as far as the budget
-    goes): the medians then pool runs made at different moments of a noisy machine."""
+    goes); each is then judged on these runs alone (``Variant.confirmed``), all taken in one
+    stretch of the noisy machine, when every one of them got some."""
+    start = {id(v): len(v.times) for v in [orig] + finalists}
     for _ in range(2):
         for v in [orig] + finalists:
             need = min(cap, (opts.runs + 1) * (v.seconds or 0)) + (v.seconds or 0)
             if clock.left() > need:
                 _time(v, args, opts, clock, cap)
+    fresh = {id(v): v.times[start[id(v)]:] for v in [orig] + finalists}
+    if all(fresh.values()):
+        for v in [orig] + finalists:
+            v.confirmed = fresh[id(v)]
 
 
 def run(tu: TranslationUnit, sel: str, opts: TuneOptions, command_of: Callable[[Config], str],

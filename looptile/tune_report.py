@@ -64,7 +64,7 @@ def _variant_json(r: TuneResult, v: Variant) -> dict:
     return {"label": v.config.label(), "origin": v.config.origin, "sizes": v.config.sizes,
             "levels": [dict(lv) for lv in v.config.levels], "jam": dict(v.config.jam),
             "scalarize": v.config.scalarize, "cflags": list(r.cflags + v.config.extra_cflags),
-            "status": v.status, "seconds": v.seconds, "times": v.times,
+            "status": v.status, "seconds": v.seconds, "times": v.times, "confirmed_times": v.confirmed,
             "rate": rate, "unit": r.work.unit or None, "speedup": sp,
             "same_result": (v.result_hash == r.original.result_hash) if v.result_hash else None,
             "command": v.command, "note": v.note or None}

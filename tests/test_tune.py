@@ -42,7 +42,9 @@ def test_json_schema_and_verified_winner():
     assert len(timed) >= 3
     assert {v["origin"] for v in timed} >= {"original", "grid", "jam"}
     for v in timed:
-        assert v["seconds"] == statistics.median(v["times"])
+        # the confirmation round alone when there was one (finalists and the original), else every run
+        assert v["seconds"] == statistics.median(v["confirmed_times"] or v["times"])
+        assert set(v["confirmed_times"]) <= set(v["times"])
         assert v["same_result"] is not None
 
 
@@ -127,3 +129,27 @@ def test_operation_counts():
         nest, analysis = pipeline.analyse(tu, pipeline.select(tu, sel), frozenset(), ())
         w = workload.of_nest(tu, nest, analysis, params)
         assert w.flops == flops, sel
+
+
+def test_finalists_are_judged_on_the_confirmation_runs(monkeypatch):
+    """The first round's fastest variant is also its luckiest (its median is the minimum of many
+    noisy medians): after the interleaved confirmation, the original and the finalists are judged
+    on those fresh runs alone, so a lucky first round cannot make a winner."""
+    fresh = {"original": 1.00, "lucky": 0.99}
+
+    def fake_time(v, args, opts, clock, cap):
+        v.times.append(fresh[v.config.origin])
+
+    monkeypatch.setattr(tune, "_time", fake_time)
+    orig = tune.Variant(tune.Config(), times=[1.0, 1.0, 1.0])
+    lucky = tune.Variant(tune.Config(((("i", 8),),), origin="lucky"), times=[0.50, 0.52, 0.51])
+    assert lucky.seconds < orig.seconds * 0.95  # a finalist after round one
+    tune._confirm(orig, [lucky], [], tune.TuneOptions({}), tune.Clock(1000.0), 1.0)
+    assert lucky.confirmed == [0.99, 0.99] and orig.confirmed == [1.0, 1.0]
+    assert lucky.seconds == 0.99 and orig.seconds == 1.0  # no longer 5% faster: the original stays
+    # Without fresh runs for everyone (the budget ran out), nobody is judged on them.
+    monkeypatch.setattr(tune, "_time", lambda v, *a: v.times.append(0.2) if v.config.origin == "lucky" else None)
+    orig2 = tune.Variant(tune.Config(), times=[1.0])
+    lucky2 = tune.Variant(tune.Config(((("i", 8),),), origin="lucky"), times=[0.5])
+    tune._confirm(orig2, [lucky2], [], tune.TuneOptions({}), tune.Clock(1000.0), 1.0)
+    assert orig2.confirmed == [] and lucky2.confirmed == []
