@@ -9,7 +9,8 @@ and register tile) and unroll-and-jam (with and without scalar replacement) on t
 tiles of the first round. The fastest variants are then timed again, interleaved with the
 original, and judged on those runs alone (the first round's fastest are also its luckiest;
 fresh interleaved runs remove that selection bias): one wins only if it beats the original by
-``min_gain`` there; the winner is checked with verify at small sizes before it is reported.
+``min_gain`` there, overall and in each of the round's two passes; the winner is checked with
+verify at small sizes before it is reported.
 
 Library code: returns values, raises LooptileError subclasses, never exits.
 """
@@ -88,6 +89,7 @@ class Variant:
     result_hash: str | None = None
     note: str = ""
     confirmed: list[float] = field(default_factory=list)  # the times of the confirmation round alone
+    passes: list[list[float]] = field(default_factory=list)  # the same, per pass of the round
 
     @property
     def seconds(self) -> float | None:
@@ -412,15 +414,19 @@ def _confirm(orig: Variant, finalists: list[Variant], args: list[str], opts: Tun
     goes); each is then judged on these runs alone (``Variant.confirmed``), all taken in one
     stretch of the noisy machine, when every one of them got some."""
     start = {id(v): len(v.times) for v in [orig] + finalists}
+    passes: dict[int, list[list[float]]] = {id(v): [] for v in [orig] + finalists}
     for _ in range(2):
         for v in [orig] + finalists:
             need = min(cap, (opts.runs + 1) * (v.seconds or 0)) + (v.seconds or 0)
+            before = len(v.times)
             if clock.left() > need:
                 _time(v, args, opts, clock, cap)
+            passes[id(v)].append(v.times[before:])
     fresh = {id(v): v.times[start[id(v)]:] for v in [orig] + finalists}
     if all(fresh.values()):
         for v in [orig] + finalists:
             v.confirmed = fresh[id(v)]
+            v.passes = [p for p in passes[id(v)]]
 
 
 def run(tu: TranslationUnit, sel: str, opts: TuneOptions, command_of: Callable[[Config], str],
@@ -501,7 +507,12 @@ def _pick(tu: TranslationUnit, nest: Nest, variants: list[Variant], orig: Varian
           opts: TuneOptions, clock: Clock, notes: list[str]) -> tuple[Variant, verify.VerifyReport | None]:
     """The fastest variant that beats the original by min_gain after the confirmation, verified."""
     def beats(v: Variant) -> bool:
-        return v.seconds < orig.seconds * (1 - opts.min_gain)
+        """By the margin; after the confirmation, in each of its passes that both were timed in
+        (a gain that shows in one stretch of the machine only is not taken)."""
+        if v.seconds >= orig.seconds * (1 - opts.min_gain):
+            return False
+        both = [(a, b) for a, b in zip(v.passes, orig.passes) if a and b]
+        return all(statistics.median(a) < statistics.median(b) * (1 - opts.min_gain) for a, b in both)
 
     ranked = sorted((v for v in variants if v.status == "timed" and v is not orig), key=lambda v: v.seconds)
     finalists = [v for v in ranked[:3] if beats(v)]

@@ -147,6 +147,7 @@ def test_finalists_are_judged_on_the_confirmation_runs(monkeypatch):
     tune._confirm(orig, [lucky], [], tune.TuneOptions({}), tune.Clock(1000.0), 1.0)
     assert lucky.confirmed == [0.99, 0.99] and orig.confirmed == [1.0, 1.0]
     assert lucky.seconds == 0.99 and orig.seconds == 1.0  # no longer 5% faster: the original stays
+    assert lucky.passes == [[0.99], [0.99]] and orig.passes == [[1.0], [1.0]]
     # Without fresh runs for everyone (the budget ran out), nobody is judged on them.
     monkeypatch.setattr(tune, "_time", lambda v, *a: v.times.append(0.2) if v.config.origin == "lucky" else None)
     orig2 = tune.Variant(tune.Config(), times=[1.0])
