@@ -9,8 +9,9 @@ and register tile) and unroll-and-jam (with and without scalar replacement) on t
 tiles of the first round. The fastest variants are then timed again, interleaved with the
 original, and judged on those runs alone (the first round's fastest are also its luckiest;
 fresh interleaved runs remove that selection bias): one wins only if it beats the original by
-``min_gain`` there, overall and in each of the round's two passes; the winner is checked with
-verify at small sizes before it is reported.
+``min_gain`` there, overall and in each of the round's two passes, and by more than the
+original's own medians moved during the run (the noise); the winner is checked with verify at
+small sizes before it is reported.
 
 Library code: returns values, raises LooptileError subclasses, never exits.
 """
@@ -90,6 +91,9 @@ class Variant:
     note: str = ""
     confirmed: list[float] = field(default_factory=list)  # the times of the confirmation round alone
     passes: list[list[float]] = field(default_factory=list)  # the same, per pass of the round
+    # The original only: how far its own medians (first round, each confirmation pass) lie apart,
+    # (largest / smallest - 1): the noise of this machine during the run.
+    spread: float = 0.0
 
     @property
     def seconds(self) -> float | None:
@@ -427,6 +431,8 @@ def _confirm(orig: Variant, finalists: list[Variant], args: list[str], opts: Tun
         for v in [orig] + finalists:
             v.confirmed = fresh[id(v)]
             v.passes = [p for p in passes[id(v)]]
+    meds = [statistics.median(t) for t in [orig.times[:start[id(orig)]]] + passes[id(orig)] if t]
+    orig.spread = max(meds) / min(meds) - 1 if meds else 0.0
 
 
 def run(tu: TranslationUnit, sel: str, opts: TuneOptions, command_of: Callable[[Config], str],
@@ -506,13 +512,15 @@ def time_source(tu: TranslationUnit, function: str, data: bytes, opts: TuneOptio
 def _pick(tu: TranslationUnit, nest: Nest, variants: list[Variant], orig: Variant, args: list[str],
           opts: TuneOptions, clock: Clock, notes: list[str]) -> tuple[Variant, verify.VerifyReport | None]:
     """The fastest variant that beats the original by min_gain after the confirmation, verified."""
-    def beats(v: Variant) -> bool:
+    def beats(v: Variant, margin: float | None = None) -> bool:
         """By the margin; after the confirmation, in each of its passes that both were timed in
-        (a gain that shows in one stretch of the machine only is not taken)."""
-        if v.seconds >= orig.seconds * (1 - opts.min_gain):
+        (a gain that shows in one stretch of the machine only is not taken), and by more than the
+        original's own times moved during the run (a gain within the noise is not taken)."""
+        gain = opts.min_gain if margin is None else margin
+        if v.seconds >= orig.seconds * (1 - gain):
             return False
         both = [(a, b) for a, b in zip(v.passes, orig.passes) if a and b]
-        return all(statistics.median(a) < statistics.median(b) * (1 - opts.min_gain) for a, b in both)
+        return all(statistics.median(a) < statistics.median(b) * (1 - gain) for a, b in both)
 
     ranked = sorted((v for v in variants if v.status == "timed" and v is not orig), key=lambda v: v.seconds)
     finalists = [v for v in ranked[:3] if beats(v)]
@@ -522,9 +530,15 @@ def _pick(tu: TranslationUnit, nest: Nest, variants: list[Variant], orig: Varian
     clock.reserve = 0  # from here on the budget's reserve is for the check of the winner
     spec = kernel_spec(tu, nest.function)
     given = {n: opts.params[n] for n in spec.other_ints if n in opts.params}
+    margin = max(opts.min_gain, orig.spread)
     for cand in sorted(finalists, key=lambda v: v.seconds):
         if not beats(cand):
             notes.append(f"{cand.config.label()} was faster at first but not when timed again with the original")
+            continue
+        if not beats(cand, margin):
+            notes.append(f"{cand.config.label()} ran {1 - cand.seconds / orig.seconds:.0%} faster when timed again, "
+                         f"but the original's own times moved by {orig.spread:.0%} during this run: a gain within "
+                         "the noise is not taken")
             continue
         sizes = tuple(s for lv in cand.config.levels for _, s in lv) + tuple(u for _, u in cand.config.jam)
         t0 = time.monotonic()

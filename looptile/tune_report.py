@@ -45,7 +45,9 @@ def summary(r: TuneResult) -> list[str]:
         fastest = min((v for v in r.variants if v.seconds and v is not o), key=lambda v: v.seconds, default=None)
         what = (f"the fastest, {fastest.config.label()}, took {fastest.seconds:.6f} s against {o.seconds:.6f} s "
                 f"({o.seconds / fastest.seconds:.2f}x)") if fastest else "no variant could be timed"
-        lines.append(f"no variant beats the original by more than {r.min_gain:.0%} here: {what}; keep the original")
+        margin = max(r.min_gain, o.spread)
+        why = f" (the original's own times moved by {o.spread:.0%} during the run)" if o.spread > r.min_gain else ""
+        lines.append(f"no variant beats the original by more than {margin:.0%}{why} here: {what}; keep the original")
         return lines
     lines.append(f"best: {b.config.label()}: {b.seconds:.6f} s"
                  + (f", {_rate(r, b)} {r.work.unit}" if r.work.unit else "")

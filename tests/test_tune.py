@@ -154,3 +154,21 @@ def test_finalists_are_judged_on_the_confirmation_runs(monkeypatch):
     lucky2 = tune.Variant(tune.Config(((("i", 8),),), origin="lucky"), times=[0.5])
     tune._confirm(orig2, [lucky2], [], tune.TuneOptions({}), tune.Clock(1000.0), 1.0)
     assert orig2.confirmed == [] and lucky2.confirmed == []
+
+
+@pytest.mark.cc
+def test_a_gain_within_the_noise_is_not_taken(monkeypatch):
+    """The original's own medians moved by 20% between the first round and the two passes of the
+    confirmation: a finalist 8% faster (more than the 5% margin) is within that noise and the
+    original stays, with a note that says why."""
+    fresh = {"original": iter([1.00, 1.20]), "grid": iter([0.92, 1.10])}
+    monkeypatch.setattr(tune, "_time", lambda v, *a: v.times.append(next(fresh[v.config.origin])))
+    orig = tune.Variant(tune.Config(), times=[1.0], status="timed")
+    cand = tune.Variant(tune.Config(((("i", 8),),), origin="grid"), times=[0.5], status="timed")
+    notes: list[str] = []
+    tu = pipeline.load(str(MATMUL), CompileFlags())
+    nest = pipeline.analyse(tu, pipeline.select(tu, "mm"), frozenset(), ())[0]
+    best, report = tune._pick(tu, nest, [orig, cand], orig, [], tune.TuneOptions({}), tune.Clock(1000.0), notes)
+    assert best is orig and report is None
+    assert abs(orig.spread - 0.2) < 1e-9
+    assert any("within the noise" in n and "moved by 20%" in n for n in notes)
