@@ -459,8 +459,8 @@ def choose(nest: Nest, analysis, band: tuple[str, ...], levels: list[Level],
     """Tile sizes for ``band`` (consecutive perfectly nested loops of ``nest``) from the cache
     ``levels`` (innermost first); ``params`` bound the sizes by the trip counts and give the row
     lengths for the conflict test; ``fixed`` sizes are kept as given; ``multiples`` (jam factors)
-    are what the innermost sizes of their loops must be multiples of; ``block`` is a register block
-    of accumulators (``--jam auto``): its loops' innermost tiles are the block itself, so the
+    are what the innermost sizes of their loops must be multiples of; ``block`` is the register
+    tile ``--jam auto`` chose: its loops' innermost tiles are the block itself, so the
     first level sizes the other loops (the reduction's run) around it, and a level whose sizes of
     those loops equal the block's is not emitted (the jammed point loop covers it)."""
     params = dict(params or {})

@@ -27,9 +27,11 @@ Two kinds of nest get a register tile; every other nest gets none, and the expla
 
 Limits, each said in the explanation: bands whose bounds depend on each other (unroll-and-jam
 after tiling is for rectangular bands), bodies with loops of their own, iterators narrower than
-int. Factors never exceed a known trip count and divide given tile sizes (``--sizes auto``
-chooses sizes that are multiples of them instead). The factors only choose among rewrites: the
-legality test runs on them as on any others.
+int. Factors never exceed a known trip count and divide given tile sizes (with ``--sizes auto`` the
+sizes are chosen around them instead: ``autosize.choose(block=...)``). The factors only choose
+among rewrites: the legality test runs on them as on any others, and a block that would break a
+dependence falls back to the vector loop's factor alone, then to no register tile
+(``pipeline._chosen_plan``).
 
 The register file is read from the machine (``/proc/cpuinfo`` flags on x86-64: AVX-512 32
 registers of 64 bytes, AVX 16 of 32, else 16 of 16; AArch64 32 of 16) or given as

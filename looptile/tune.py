@@ -430,7 +430,7 @@ def _confirm(orig: Variant, finalists: list[Variant], args: list[str], opts: Tun
     if all(fresh.values()):
         for v in [orig] + finalists:
             v.confirmed = fresh[id(v)]
-            v.passes = [p for p in passes[id(v)]]
+            v.passes = list(passes[id(v)])
     meds = [statistics.median(t) for t in [orig.times[:start[id(orig)]]] + passes[id(orig)] if t]
     orig.spread = max(meds) / min(meds) - 1 if meds else 0.0
 
