@@ -131,11 +131,6 @@ def _uses(a: Affine, x: str) -> int:
     return dict(a.terms).get(x, 0)
 
 
-def _trip(nest: Nest, x: str, params: dict[str, int]) -> int | None:
-    from .autosize import trip_counts
-    return trip_counts(nest, params).get(x)
-
-
 def _limit(u: int, x: str, trips: dict[str, int | None], sizes: dict[str, int], multiple: int = 1) -> int:
     """The largest factor <= u (a multiple of ``multiple`` when possible) within the trip count of
     loop x and dividing its given tile size."""
@@ -180,7 +175,9 @@ def choose(nest: Nest, inside: tuple[str, ...], tiling: RegisterTiling, sizes: d
     writes = [a for a in accesses if a.write]
     if not writes:
         return none("the body writes no array element")
-    trips = {x: _trip(nest, x, params) for x in inside}
+    from .autosize import trip_counts
+    counted = trip_counts(nest, params)
+    trips = {x: counted.get(x) for x in inside}
     invariant = [a for a in writes if not any(_uses(s, innermost) for s in a.subscripts)]
     if len(invariant) == len(writes):
         return _accumulators(nest, inside, cands, accesses, writes, trips, sizes, regs, why, scalarize, none)
